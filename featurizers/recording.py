@@ -1,0 +1,86 @@
+"""A recording folder: find its stream files and bring its table streams onto one common clock.
+
+Pure computation. The video branch lives in featurizers.video / featurizers.embed and is kept separate on purpose:
+a change to a table stream's profile section never touches decoded frames.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+
+from fleetsift.errors import InputError
+from featurizers.tables import RawTable, clean_table, read_table_file, resample, uniform_clock
+
+LOG_SUFFIXES = (".ulg", ".mcap", ".db3")
+
+
+def resolve_stream_file(rec_dir: Path, pattern: str, stream: str) -> Path:
+    """The one file in the recording folder that a stream's `file` (name or glob) names."""
+    rec_dir = Path(rec_dir).resolve()
+    matches = sorted(p for p in rec_dir.glob(pattern) if p.resolve().is_relative_to(rec_dir))
+    if not matches:
+        have = sorted(p.name for p in rec_dir.iterdir()) if rec_dir.is_dir() else []
+        raise InputError(rec_dir, f"streams.{stream}.file", f"a file matching {pattern!r}", f"folder holds {have}")
+    if len(matches) > 1:
+        raise InputError(rec_dir, f"streams.{stream}.file", f"exactly one file matching {pattern!r}",
+                         f"{[m.name for m in matches]}")
+    path = matches[0]
+    if not path.resolve().is_relative_to(rec_dir):
+        raise InputError(rec_dir, f"streams.{stream}.file", "a file inside the recording folder", str(path))
+    if not (path.is_file() or (path.is_dir() and (path / "metadata.yaml").exists())):
+        raise InputError(path, f"streams.{stream}.file", "a regular file", "not a file")
+    try:
+        if path.is_file():
+            with open(path, "rb") as f:
+                f.read(1)
+    except OSError as e:
+        raise InputError(path, f"streams.{stream}.file", "a readable file", e.strerror or str(e)) from None
+    return path
+
+
+def read_table_stream(rec_dir: Path, stream) -> RawTable:
+    """Read one table stream (CSV, Parquet, ULog topic or ROS 2 bag topic) and clean it."""
+    path = resolve_stream_file(rec_dir, stream.file, stream.name)
+    cal = {ch: (c.bias, c.scale) for ch, c in stream.calibration.items()}
+    if path.suffix.lower() in LOG_SUFFIXES or path.is_dir():
+        from featurizers import logs
+
+        kind = logs.log_kind(path)
+        if kind == "ulog":
+            t, values, names = logs.read_ulog_topic(path, stream.topic, list(stream.channels) or None,
+                                                    instance=stream.instance)
+        elif kind == "rosbag":
+            t, values, names = logs.read_bag_topic(path, stream.topic, list(stream.channels) or None,
+                                                   stamp=stream.stamp)
+        else:
+            raise InputError(path, f"streams.{stream.name}.file", "a ULog file or a ROS 2 bag", "unknown log format")
+        return clean_table(str(path), t, values, list(names), "s", cal, stream.clock_offset_s)
+    t, values = read_table_file(path, stream.time_column, list(stream.channels))
+    return clean_table(str(path), t, values, list(stream.channels), stream.time_unit, cal, stream.clock_offset_s)
+
+
+def common_clock(tables: list[RawTable], rate_hz: float, max_gap_s: float
+                 ) -> tuple[float, np.ndarray, np.ndarray, np.ndarray, list[str]]:
+    """Resample every table stream onto one uniform clock spanning their overlap.
+
+    Returns (t0, t (relative to t0), values, valid, channels); t0 is the earliest sample of any table stream, so
+    times are "seconds from the recording's first sample".
+    """
+    t0 = min(float(tb.t[0]) for tb in tables)
+    start = max(float(tb.t[0]) for tb in tables)
+    end = min(float(tb.t[-1]) for tb in tables)
+    if end <= start:
+        spans = ", ".join(f"{Path(tb.file).name}: {tb.t[0]:.3f}..{tb.t[-1]:.3f} s" for tb in tables)
+        raise InputError(tables[0].file, "time span", "streams whose time spans overlap", spans)
+    # Align the clock on multiples of 1/rate from t0 so window times are round numbers.
+    first = t0 + np.ceil((start - t0) * rate_hz - 1e-9) / rate_hz
+    clock = uniform_clock(first, end, rate_hz)
+    cols, valid, names = [], np.ones(len(clock), bool), []
+    for tb in tables:
+        x, v = resample(tb, clock, max_gap_s)
+        cols.append(x)
+        valid &= v
+        names += tb.channels
+    return t0, clock - t0, np.column_stack(cols), valid, names

@@ -1,0 +1,374 @@
+"""Sensor profile: a TOML file that says how to read a recording's streams and how to window and score them.
+
+Every key is validated; unknown keys are errors (a typo must never be silently ignored). Errors name the file, the
+key, what was expected and what was found.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import math
+import tomllib
+from dataclasses import asdict, dataclass, field
+from pathlib import Path
+from typing import Any
+
+from fleetsift.errors import ProfileError
+
+PROFILE_NAME = "profile.toml"
+TIME_UNITS = {"s": 1.0, "ms": 1e-3, "us": 1e-6, "ns": 1e-9}
+DESCRIPTOR_KINDS = ("ledoit_wolf", "oas", "rbf", "lagged")
+METRICS = ("riemann", "logeuclid", "euclid")
+SCORING_METHODS = ("knn", "mean")
+KNN_STATS = ("kth", "mean")
+STREAM_KINDS = ("table", "video")
+STAMP_SOURCES = ("header", "receive")
+
+
+@dataclass(frozen=True)
+class Calibration:
+    bias: float = 0.0
+    scale: float = 1.0
+
+
+@dataclass(frozen=True)
+class TableStream:
+    name: str
+    file: str
+    time_column: str = "t"
+    time_unit: str = "s"
+    channels: tuple[str, ...] = ()
+    clock_offset_s: float = 0.0
+    calibration: dict[str, Calibration] = field(default_factory=dict)
+    topic: str = ""  # for log files (ULog, ROS 2 bag)
+    instance: int = 0  # ULog multi-instance topics
+    stamp: str = "header"  # ROS 2: header stamp or receive time
+    kind: str = "table"
+
+
+@dataclass(frozen=True)
+class VideoStream:
+    name: str
+    file: str
+    clock_offset_s: float = 0.0
+    sample_hz: float = 5.0
+    backbone: str = "efficientnet_lite0"
+    weights: str = ""
+    pca_dim: int = 4
+    image_size: int = 224
+    threads: int = 2
+    batch_size: int = 8
+    topic: str = ""  # for image topics in a ROS 2 bag
+    stamp: str = "header"
+    kind: str = "video"
+
+
+@dataclass(frozen=True)
+class Windowing:
+    rate_hz: float = 50.0
+    window_s: float = 4.0
+    hop_s: float = 2.0
+    max_gap_s: float = 0.25
+
+
+@dataclass(frozen=True)
+class Descriptor:
+    kind: str = "ledoit_wolf"
+    include_mean: bool = True
+    lags: int = 3
+    ridge: float = 1e-6
+
+
+@dataclass(frozen=True)
+class Scoring:
+    metric: str = "riemann"
+    method: str = "knn"
+    k: int = 5
+    knn_stat: str = "kth"
+    exclusion_s: float = 30.0
+    trim_fraction: float = 0.1
+    threshold_c: float = 3.0
+    top_channels: int = 3
+
+
+@dataclass(frozen=True)
+class BaselineSpec:
+    recordings: tuple[str, ...] = ()
+
+
+@dataclass(frozen=True)
+class Profile:
+    path: str
+    streams: dict[str, TableStream | VideoStream]
+    windowing: Windowing = Windowing()
+    descriptor: Descriptor = Descriptor()
+    scoring: Scoring = Scoring()
+    baseline: BaselineSpec = BaselineSpec()
+
+    def table_streams(self) -> list[TableStream]:
+        return [s for s in self.streams.values() if isinstance(s, TableStream)]
+
+    def video_streams(self) -> list[VideoStream]:
+        return [s for s in self.streams.values() if isinstance(s, VideoStream)]
+
+    def section(self, name: str) -> dict[str, Any]:
+        """The plain-data content of one section, the unit that cache keys are built from."""
+        if name.startswith("streams."):
+            return _plain(asdict(self.streams[name.split(".", 1)[1]]))
+        return _plain(asdict(getattr(self, name)))
+
+    def to_dict(self) -> dict[str, Any]:
+        out = {k: self.section(k) for k in ("windowing", "descriptor", "scoring", "baseline")}
+        out["streams"] = {n: self.section(f"streams.{n}") for n in self.streams}
+        return out
+
+    def digest(self) -> str:
+        return section_hash(self.to_dict())
+
+
+def _plain(obj: Any) -> Any:
+    if isinstance(obj, dict):
+        return {str(k): _plain(v) for k, v in sorted(obj.items())}
+    if isinstance(obj, (list, tuple)):
+        return [_plain(v) for v in obj]
+    return obj
+
+
+def section_hash(section: Any) -> str:
+    return hashlib.sha256(json.dumps(_plain(section), sort_keys=True).encode()).hexdigest()[:16]
+
+
+# --- validation helpers ----------------------------------------------------------------------------------------------
+
+def _type_name(v: Any) -> str:
+    return f"{type(v).__name__} {v!r}"
+
+
+class _Checker:
+    def __init__(self, path: str):
+        self.path = path
+
+    def fail(self, key: str, expected: str, got: Any) -> None:
+        raise ProfileError(self.path, key, expected, got)
+
+    def table(self, data: Any, key: str) -> dict:
+        if not isinstance(data, dict):
+            self.fail(key, "a table", _type_name(data))
+        return data
+
+    def no_unknown(self, data: dict, allowed: set[str], where: str) -> None:
+        for k in data:
+            if k not in allowed:
+                self.fail(f"{where}.{k}" if where else k, f"one of the known keys {sorted(allowed)}",
+                          "an unknown key")
+
+    def number(self, data: dict, key: str, where: str, default: float, *, positive=False, nonneg=False,
+               finite=True, lo=None, hi=None) -> float:
+        v = data.get(key, default)
+        full = f"{where}.{key}"
+        if isinstance(v, bool) or not isinstance(v, (int, float)):
+            self.fail(full, "a number", _type_name(v))
+        v = float(v)
+        if finite and not math.isfinite(v):
+            self.fail(full, "a finite number", v)
+        if positive and not v > 0:
+            self.fail(full, "a number > 0", v)
+        if nonneg and v < 0:
+            self.fail(full, "a number >= 0", v)
+        if lo is not None and v < lo:
+            self.fail(full, f"a number >= {lo}", v)
+        if hi is not None and v > hi:
+            self.fail(full, f"a number <= {hi}", v)
+        return v
+
+    def integer(self, data: dict, key: str, where: str, default: int, *, lo: int | None = None) -> int:
+        v = data.get(key, default)
+        full = f"{where}.{key}"
+        if isinstance(v, bool) or not isinstance(v, int):
+            self.fail(full, "an integer", _type_name(v))
+        if lo is not None and v < lo:
+            self.fail(full, f"an integer >= {lo}", v)
+        return int(v)
+
+    def boolean(self, data: dict, key: str, where: str, default: bool) -> bool:
+        v = data.get(key, default)
+        if not isinstance(v, bool):
+            self.fail(f"{where}.{key}", "true or false", _type_name(v))
+        return v
+
+    def string(self, data: dict, key: str, where: str, default: str | None, *, choices=None) -> str:
+        if key not in data and default is None:
+            self.fail(f"{where}.{key}", "a string (required)", "nothing")
+        v = data.get(key, default)
+        full = f"{where}.{key}"
+        if not isinstance(v, str):
+            self.fail(full, "a string", _type_name(v))
+        if choices is not None and v not in choices:
+            self.fail(full, f"one of {list(choices)}", repr(v))
+        return v
+
+    def strings(self, data: dict, key: str, where: str, default: tuple[str, ...]) -> tuple[str, ...]:
+        v = data.get(key, list(default))
+        full = f"{where}.{key}"
+        if not isinstance(v, list) or not all(isinstance(x, str) for x in v):
+            self.fail(full, "a list of strings", _type_name(v))
+        if len(set(v)) != len(v):
+            self.fail(full, "distinct names", v)
+        return tuple(v)
+
+    def relative_file(self, data: dict, key: str, where: str) -> str:
+        v = self.string(data, key, where, None)
+        p = Path(v)
+        # Refuse paths that could read outside the recording folder.
+        if p.is_absolute() or ".." in p.parts or v.strip() == "":
+            self.fail(f"{where}.{key}", "a file name or glob inside the recording folder", repr(v))
+        return v
+
+
+def parse_profile(text: str, path: str = "<profile>") -> Profile:
+    """Parse and validate profile TOML text."""
+    c = _Checker(path)
+    try:
+        data = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as e:
+        raise ProfileError(path, "TOML syntax", "valid TOML", str(e)) from None
+    c.no_unknown(data, {"windowing", "descriptor", "scoring", "baseline", "streams"}, "")
+
+    w = c.table(data.get("windowing", {}), "windowing")
+    c.no_unknown(w, {f for f in Windowing.__dataclass_fields__}, "windowing")
+    windowing = Windowing(
+        rate_hz=c.number(w, "rate_hz", "windowing", Windowing.rate_hz, positive=True, hi=10_000),
+        window_s=c.number(w, "window_s", "windowing", Windowing.window_s, positive=True),
+        hop_s=c.number(w, "hop_s", "windowing", Windowing.hop_s, positive=True),
+        max_gap_s=c.number(w, "max_gap_s", "windowing", Windowing.max_gap_s, positive=True),
+    )
+    if windowing.window_s * windowing.rate_hz < 4:
+        c.fail("windowing.window_s", "a window of at least 4 samples at rate_hz", windowing.window_s)
+
+    d = c.table(data.get("descriptor", {}), "descriptor")
+    c.no_unknown(d, {f for f in Descriptor.__dataclass_fields__}, "descriptor")
+    descriptor = Descriptor(
+        kind=c.string(d, "kind", "descriptor", Descriptor.kind, choices=DESCRIPTOR_KINDS),
+        include_mean=c.boolean(d, "include_mean", "descriptor", Descriptor.include_mean),
+        lags=c.integer(d, "lags", "descriptor", Descriptor.lags, lo=1),
+        ridge=c.number(d, "ridge", "descriptor", Descriptor.ridge, positive=True),
+    )
+
+    s = c.table(data.get("scoring", {}), "scoring")
+    c.no_unknown(s, {f for f in Scoring.__dataclass_fields__}, "scoring")
+    scoring = Scoring(
+        metric=c.string(s, "metric", "scoring", Scoring.metric, choices=METRICS),
+        method=c.string(s, "method", "scoring", Scoring.method, choices=SCORING_METHODS),
+        k=c.integer(s, "k", "scoring", Scoring.k, lo=1),
+        knn_stat=c.string(s, "knn_stat", "scoring", Scoring.knn_stat, choices=KNN_STATS),
+        exclusion_s=c.number(s, "exclusion_s", "scoring", Scoring.exclusion_s, nonneg=True, finite=False),
+        trim_fraction=c.number(s, "trim_fraction", "scoring", Scoring.trim_fraction, lo=0.0, hi=0.5),
+        threshold_c=c.number(s, "threshold_c", "scoring", Scoring.threshold_c, positive=True),
+        top_channels=c.integer(s, "top_channels", "scoring", Scoring.top_channels, lo=1),
+    )
+
+    b = c.table(data.get("baseline", {}), "baseline")
+    c.no_unknown(b, {"recordings"}, "baseline")
+    baseline = BaselineSpec(recordings=c.strings(b, "recordings", "baseline", ()))
+
+    raw_streams = c.table(data.get("streams", {}), "streams")
+    if not raw_streams:
+        c.fail("streams", "at least one [streams.NAME] section", "none")
+    streams: dict[str, TableStream | VideoStream] = {}
+    for name, st in raw_streams.items():
+        where = f"streams.{name}"
+        st = c.table(st, where)
+        kind = c.string(st, "kind", where, None, choices=STREAM_KINDS)
+        if kind == "table":
+            streams[name] = _parse_table(c, name, st, where)
+        else:
+            streams[name] = _parse_video(c, name, st, where)
+    channel_owner: dict[str, str] = {}
+    for st in streams.values():
+        if isinstance(st, TableStream):
+            for ch in st.channels:
+                if ch in channel_owner:
+                    c.fail(f"streams.{st.name}.channels", "channel names unique across streams",
+                           f"{ch!r} also in streams.{channel_owner[ch]}")
+                channel_owner[ch] = st.name
+    if not any(isinstance(st, TableStream) for st in streams.values()):
+        c.fail("streams", "at least one table stream (it defines the common clock)", "only video streams")
+    return Profile(path=path, streams=streams, windowing=windowing, descriptor=descriptor, scoring=scoring,
+                   baseline=baseline)
+
+
+def _parse_table(c: _Checker, name: str, st: dict, where: str) -> TableStream:
+    allowed = {"kind", "file", "time_column", "time_unit", "channels", "clock_offset_s", "calibration", "topic",
+               "instance", "stamp"}
+    c.no_unknown(st, allowed, where)
+    channels = c.strings(st, "channels", where, ())
+    topic = c.string(st, "topic", where, "")
+    if not channels and not topic:
+        c.fail(f"{where}.channels", "a non-empty list of channel names", "none")
+    cal_raw = c.table(st.get("calibration", {}), f"{where}.calibration")
+    cal: dict[str, Calibration] = {}
+    for ch, spec in cal_raw.items():
+        cw = f"{where}.calibration.{ch}"
+        if channels and ch not in channels:
+            c.fail(cw, f"a calibration for one of the channels {list(channels)}", repr(ch))
+        spec = c.table(spec, cw)
+        c.no_unknown(spec, {"bias", "scale"}, cw)
+        scale = c.number(spec, "scale", cw, 1.0)
+        if scale == 0:
+            c.fail(f"{cw}.scale", "a non-zero number", scale)
+        cal[ch] = Calibration(bias=c.number(spec, "bias", cw, 0.0), scale=scale)
+    return TableStream(
+        name=name,
+        file=c.relative_file(st, "file", where),
+        time_column=c.string(st, "time_column", where, "t" if not topic else "timestamp"),
+        time_unit=c.string(st, "time_unit", where, "s", choices=tuple(TIME_UNITS)),
+        channels=channels,
+        clock_offset_s=c.number(st, "clock_offset_s", where, 0.0),
+        calibration=cal,
+        topic=topic,
+        instance=c.integer(st, "instance", where, 0, lo=0),
+        stamp=c.string(st, "stamp", where, "header", choices=STAMP_SOURCES),
+    )
+
+
+def _parse_video(c: _Checker, name: str, st: dict, where: str) -> VideoStream:
+    allowed = {f for f in VideoStream.__dataclass_fields__} - {"name"}
+    c.no_unknown(st, allowed, where)
+    weights = c.string(st, "weights", where, "")
+    return VideoStream(
+        name=name,
+        file=c.relative_file(st, "file", where),
+        clock_offset_s=c.number(st, "clock_offset_s", where, 0.0),
+        sample_hz=c.number(st, "sample_hz", where, VideoStream.sample_hz, positive=True, hi=1000),
+        backbone=c.string(st, "backbone", where, VideoStream.backbone),
+        weights=weights,
+        pca_dim=c.integer(st, "pca_dim", where, VideoStream.pca_dim, lo=1),
+        image_size=c.integer(st, "image_size", where, VideoStream.image_size, lo=32),
+        threads=c.integer(st, "threads", where, VideoStream.threads, lo=1),
+        batch_size=c.integer(st, "batch_size", where, VideoStream.batch_size, lo=1),
+        topic=c.string(st, "topic", where, ""),
+        stamp=c.string(st, "stamp", where, "header", choices=STAMP_SOURCES),
+    )
+
+
+def load_profile(path: str | Path) -> Profile:
+    path = Path(path)
+    try:
+        text = path.read_text(encoding="utf-8")
+    except FileNotFoundError:
+        raise ProfileError(str(path), "file", "an existing profile file", "no such file") from None
+    except (OSError, UnicodeDecodeError) as e:
+        raise ProfileError(str(path), "file", "a readable UTF-8 text file", str(e)) from None
+    return parse_profile(text, str(path))
+
+
+def profile_for(recording_dir: Path, inbox_profile: Profile | None) -> Profile:
+    """A recording's own profile.toml wins over the inbox-level one."""
+    own = Path(recording_dir) / PROFILE_NAME
+    if own.exists():
+        return load_profile(own)
+    if inbox_profile is None:
+        raise ProfileError(str(recording_dir), PROFILE_NAME,
+                           "a profile.toml in the recording folder, in the inbox, or --profile", "none found")
+    return inbox_profile

@@ -1,0 +1,255 @@
+"""The results store: Delta Lake tables (`runs`, `recordings`, `windows`), the stage cache and the write lock.
+
+Layout of a store folder:
+    runs/ recordings/ windows/     Delta tables (deltalake), one appended version per run
+    cache/<stage>/<key>.npz        stage outputs, content-addressed (see `stage_key`)
+    baselines/<baseline_id>.npz    every baseline a score was measured against
+    catalog.json                   file content hashes keyed by (path, size, mtime) so warm runs do not re-hash
+    prefect/                       Prefect's home for runs against the embedded temporary server
+    reports/                       HTML reports
+    .lock                          held by the one writer
+"""
+
+from __future__ import annotations
+
+import contextlib
+import errno
+import fcntl
+import hashlib
+import inspect
+import io
+import json
+import os
+import tempfile
+import time
+from pathlib import Path
+from typing import Any, Iterator
+
+import numpy as np
+import pandas as pd
+import pyarrow as pa
+
+from fleetsift import __version__
+from fleetsift.errors import StoreLockedError
+
+TABLE_SCHEMAS: dict[str, pa.Schema] = {
+    "runs": pa.schema([
+        ("run_id", pa.string()),
+        ("started_at", pa.timestamp("us", tz="UTC")),
+        ("finished_at", pa.timestamp("us", tz="UTC")),
+        ("code_version", pa.string()),
+        ("profile_hash", pa.string()),
+        ("baseline_id", pa.string()),
+        ("n_recordings", pa.int64()),
+        ("n_scored", pa.int64()),
+        ("n_quarantined", pa.int64()),
+        ("n_windows", pa.int64()),
+        ("n_flagged", pa.int64()),
+        ("status", pa.string()),
+    ]),
+    "recordings": pa.schema([
+        ("run_id", pa.string()),
+        ("recording_id", pa.string()),
+        ("content_hash", pa.string()),
+        ("duration_s", pa.float64()),
+        ("status", pa.string()),
+        ("reason", pa.string()),
+    ]),
+    "windows": pa.schema([
+        ("run_id", pa.string()),
+        ("recording_id", pa.string()),
+        ("window_index", pa.int64()),
+        ("t_start_s", pa.float64()),
+        ("t_end_s", pa.float64()),
+        ("metric", pa.string()),
+        ("score", pa.float64()),
+        ("threshold", pa.float64()),
+        ("flagged", pa.bool_()),
+        ("top_channels", pa.string()),
+        ("baseline_id", pa.string()),
+    ]),
+}
+TABLES = tuple(TABLE_SCHEMAS)
+
+
+def code_version(*objects: Any) -> str:
+    """A stage's code version: the hash of the source of the modules it runs (so an edit invalidates its cache)."""
+    h = hashlib.sha256(__version__.encode())
+    for obj in objects:
+        try:
+            h.update(inspect.getsource(obj).encode())
+        except (OSError, TypeError):
+            h.update(repr(obj).encode())
+    return h.hexdigest()[:16]
+
+
+def stage_key(stage: str, content_hash: str, section: Any, version: str) -> str:
+    """Cache key = hash(recording content, the profile section the stage reads, the stage's code version)."""
+    blob = json.dumps({"stage": stage, "content": content_hash, "section": section, "code": version},
+                      sort_keys=True, default=str)
+    return hashlib.sha256(blob.encode()).hexdigest()[:24]
+
+
+def _atomic_write_bytes(path: Path, data: bytes) -> None:
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".tmp")
+    try:
+        with os.fdopen(fd, "wb") as f:
+            f.write(data)
+            f.flush()
+            os.fsync(f.fileno())
+        os.replace(tmp, path)
+    except BaseException:
+        with contextlib.suppress(FileNotFoundError):
+            os.unlink(tmp)
+        raise
+
+
+class Store:
+    def __init__(self, root: str | Path):
+        self.root = Path(root).resolve()
+
+    # --- folders --------------------------------------------------------------------------------------------------
+    def init(self) -> "Store":
+        for sub in ("cache", "baselines", "prefect", "reports"):
+            (self.root / sub).mkdir(parents=True, exist_ok=True)
+        return self
+
+    def table_path(self, name: str) -> Path:
+        return self.root / name
+
+    def cache_path(self, stage: str, key: str) -> Path:
+        return self.root / "cache" / stage / f"{key}.npz"
+
+    # --- lock -----------------------------------------------------------------------------------------------------
+    @contextlib.contextmanager
+    def lock(self, wait_s: float = 0.0) -> Iterator[None]:
+        """One writer at a time. Waits up to wait_s, then refuses with a message naming the holder."""
+        self.root.mkdir(parents=True, exist_ok=True)
+        path = self.root / ".lock"
+        fd = os.open(path, os.O_RDWR | os.O_CREAT, 0o644)
+        deadline = time.monotonic() + wait_s
+        try:
+            while True:
+                try:
+                    fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+                    break
+                except OSError as e:
+                    if e.errno not in (errno.EAGAIN, errno.EACCES):
+                        raise
+                    if time.monotonic() >= deadline:
+                        holder = os.pread(fd, 200, 0).decode(errors="replace").strip() or "another process"
+                        raise StoreLockedError(
+                            f"{self.root}: the store is being written by {holder}; wait for it to finish "
+                            f"(or pass --wait SECONDS) and run again") from None
+                    time.sleep(0.2)
+            os.ftruncate(fd, 0)
+            os.pwrite(fd, f"pid {os.getpid()} since {time.strftime('%Y-%m-%d %H:%M:%S')}".encode(), 0)
+            yield
+        finally:
+            with contextlib.suppress(OSError):
+                fcntl.flock(fd, fcntl.LOCK_UN)
+            os.close(fd)
+
+    # --- arrays ---------------------------------------------------------------------------------------------------
+    def save_arrays(self, path: Path, **arrays: Any) -> Path:
+        buf = io.BytesIO()
+        np.savez(buf, **arrays)
+        _atomic_write_bytes(path, buf.getvalue())
+        return path
+
+    @staticmethod
+    def load_arrays(path: str | Path) -> dict[str, np.ndarray]:
+        with np.load(path, allow_pickle=False) as z:
+            return {k: z[k] for k in z.files}
+
+    # --- content hashes -------------------------------------------------------------------------------------------
+    def file_hash(self, path: str | Path) -> str:
+        """sha256 of a file, remembered by (path, size, mtime_ns) so an unchanged file is hashed once."""
+        path = Path(path).resolve()
+        st = path.stat()
+        catalog_path = self.root / "catalog.json"
+        try:
+            catalog = json.loads(catalog_path.read_text())
+        except (FileNotFoundError, json.JSONDecodeError):
+            catalog = {}
+        sig = f"{st.st_size}:{st.st_mtime_ns}"
+        entry = catalog.get(str(path))
+        if entry and entry.get("sig") == sig:
+            return entry["sha256"]
+        h = hashlib.sha256()
+        with open(path, "rb") as f:
+            for chunk in iter(lambda: f.read(1 << 20), b""):
+                h.update(chunk)
+        digest = h.hexdigest()
+        catalog[str(path)] = {"sig": sig, "sha256": digest}
+        _atomic_write_bytes(catalog_path, json.dumps(catalog, indent=0).encode())
+        return digest
+
+    # --- Delta tables ---------------------------------------------------------------------------------------------
+    def has_run(self, table: str, run_id: str) -> bool:
+        from deltalake import DeltaTable
+        import pyarrow.dataset as ds
+
+        path = self.table_path(table)
+        if not (path / "_delta_log").exists():
+            return False
+        dataset = DeltaTable(str(path)).to_pyarrow_dataset()
+        return dataset.count_rows(filter=ds.field("run_id") == run_id) > 0
+
+    def append(self, table: str, df: pd.DataFrame) -> int | None:
+        """Append one run's rows; a retried write of the same run_id is a no-op (idempotent)."""
+        from deltalake import write_deltalake
+
+        schema = TABLE_SCHEMAS[table]
+        if df.empty:
+            return None
+        run_ids = df["run_id"].unique()
+        assert len(run_ids) == 1, "one run per append"
+        if self.has_run(table, str(run_ids[0])):
+            return None
+        arrow = pa.Table.from_pandas(df[[f.name for f in schema]], schema=schema, preserve_index=False)
+        write_deltalake(str(self.table_path(table)), arrow, mode="append")
+        return self.version(table)
+
+    def version(self, table: str = "runs") -> int | None:
+        from deltalake import DeltaTable
+
+        path = self.table_path(table)
+        if not (path / "_delta_log").exists():
+            return None
+        return DeltaTable(str(path)).version()
+
+    def read(self, table: str, version: int | None = None, run_id: str | None = None) -> pd.DataFrame:
+        from deltalake import DeltaTable
+        import pyarrow.dataset as ds
+
+        path = self.table_path(table)
+        if not (path / "_delta_log").exists():
+            return TABLE_SCHEMAS[table].empty_table().to_pandas()
+        dataset = DeltaTable(str(path), version=version).to_pyarrow_dataset()
+        flt = ds.field("run_id") == run_id if run_id else None
+        return dataset.to_table(filter=flt).to_pandas()
+
+    def runs_history(self) -> pd.DataFrame:
+        """One row per run with the `runs` table version that committed it (for --as-of)."""
+        from deltalake import DeltaTable
+
+        path = self.table_path("runs")
+        if not (path / "_delta_log").exists():
+            return pd.DataFrame(columns=["version", "run_id", "finished_at", "n_recordings", "n_windows",
+                                         "n_flagged", "n_quarantined", "status"])
+        seen: set[str] = set()
+        rows = []
+        for v in range(DeltaTable(str(path)).version() + 1):
+            try:
+                df = self.read("runs", version=v)
+            except Exception:  # a version removed by vacuum outside the retention
+                continue
+            for r in df.to_dict("records"):
+                if r["run_id"] not in seen:
+                    seen.add(r["run_id"])
+                    rows.append({"version": v, **r})
+        cols = ["version", "run_id", "finished_at", "n_recordings", "n_windows", "n_flagged", "n_quarantined",
+                "status", "baseline_id"]
+        return pd.DataFrame(rows)[cols]

@@ -1,0 +1,280 @@
+"""The `fleetsift` command."""
+
+from __future__ import annotations
+
+import argparse
+import json
+import math
+import os
+import sys
+import tempfile
+from pathlib import Path
+
+from flows import env
+
+EXIT_OK, EXIT_ERROR, EXIT_USAGE, EXIT_QUARANTINED, EXIT_LOCKED = 0, 1, 2, 3, 4
+SAFETY_NOTE = ("Scores are a screening aid, not a certification of airworthiness or roadworthiness: follow your "
+               "operator's procedures and local rules before grounding or releasing a vehicle.")
+
+
+def _num(x):
+    if x is None:
+        return None
+    x = float(x)
+    return None if math.isnan(x) else round(x, 6)
+
+
+def summarise(result: dict, metric: str) -> dict:
+    """The CLI contract's JSON: run id, store version, per recording its status, windows, top score, flags."""
+    import pandas as pd
+
+    per = {}
+    if result.get("score"):
+        w = pd.read_parquet(result["score"]["path"])
+        w = w[w["metric"] == metric]
+        for rid, g in w.groupby("recording_id"):
+            sc = g["score"].dropna()
+            per[rid] = {"n_windows": int(len(sc)), "n_invalid_windows": int(g["score"].isna().sum()),
+                        "max_score": _num(sc.max()) if len(sc) else None, "n_flagged": int(g["flagged"].sum())}
+    recs = []
+    for r in result["recordings"]:
+        item = {"recording_id": r["recording_id"], "status": r["status"]}
+        if r["status"] == "scored":
+            item.update(per.get(r["recording_id"], {"n_windows": 0, "max_score": None, "n_flagged": 0}))
+            item["duration_s"] = _num(r["duration_s"])
+        else:
+            item["reason"] = r["reason"]
+        recs.append(item)
+    return {
+        "run_id": result["run_id"],
+        "store": result["store"],
+        "store_version": result["store_version"],
+        "baseline_id": (result.get("score") or {}).get("baseline_id"),
+        "metric": metric,
+        "thresholds": (result.get("score") or {}).get("thresholds"),
+        "recordings": recs,
+        "quarantined": [{"recording_id": r["recording_id"], "reason": r["reason"]}
+                        for r in result["recordings"] if r["status"] == "quarantined"],
+        "stages": result["stages"],
+        "elapsed_s": result["elapsed_s"],
+        "report": result.get("report"),
+        "note": SAFETY_NOTE,
+    }
+
+
+def print_table(summary: dict, out=sys.stdout) -> None:
+    print(f"run {summary['run_id']}  store version {summary['store_version']}  baseline {summary['baseline_id']}  "
+          f"metric {summary['metric']}", file=out)
+    print(f"{'recording':<28} {'status':<12} {'windows':>7} {'flagged':>7} {'max score':>10}", file=out)
+    for r in summary["recordings"]:
+        if r["status"] == "scored":
+            ms = "-" if r.get("max_score") is None else f"{r['max_score']:.3f}"
+            print(f"{r['recording_id']:<28} {r['status']:<12} {r['n_windows']:>7} {r['n_flagged']:>7} {ms:>10}",
+                  file=out)
+        else:
+            print(f"{r['recording_id']:<28} {r['status']:<12}  {r['reason']}", file=out)
+    st = summary["stages"]
+    print("stages: " + ", ".join(f"{k} {v['computed']} computed / {v['reused']} reused" for k, v in st.items()),
+          file=out)
+    if summary.get("report"):
+        print(f"report: {summary['report']}", file=out)
+    print(SAFETY_NOTE, file=out)
+
+
+def do_run(inbox: str, store: str, profile: str | None, runner: str, dask_address: str | None, wait_s: float,
+           progress: bool, report: bool = True) -> dict:
+    env.configure(store)
+    from fleetsift.store import Store
+    from flows.nightly import nightly_flow
+
+    st = Store(store).init()
+    with st.lock(wait_s=wait_s):
+        fl = nightly_flow
+        parallel = False
+        if runner == "dask":
+            from prefect_dask import DaskTaskRunner
+
+            kwargs = {"address": dask_address} if dask_address else {
+                "cluster_kwargs": {"n_workers": 2, "threads_per_worker": 1, "processes": True,
+                                   "dashboard_address": None}}
+            fl = nightly_flow.with_options(task_runner=DaskTaskRunner(**kwargs))
+            parallel = True
+        result = fl(inbox=str(Path(inbox).resolve()), store=str(st.root), profile_path=profile, parallel=parallel,
+                    progress=progress)
+        if report:
+            try:
+                from flows.report import write_report
+
+                out = st.root / "reports" / f"{result['run_id']}.html"
+                write_report(str(st.root), result["run_id"], str(out))
+                result["report"] = str(out)
+            except Exception as e:  # the scores are stored; a report failure must not fail the night
+                print(f"warning: report not written: {e}", file=sys.stderr)
+    return result
+
+
+def cmd_run(a) -> int:
+    from fleetsift.errors import InputError, StoreLockedError
+    from fleetsift.profile import load_profile
+
+    try:
+        result = do_run(a.inbox, a.store, a.profile, a.runner, a.dask_address, a.wait, progress=not a.json)
+    except StoreLockedError as e:
+        print(f"fleetsift: {e}", file=sys.stderr)
+        return EXIT_LOCKED
+    except InputError as e:
+        print(f"fleetsift: {e}", file=sys.stderr)
+        return EXIT_ERROR
+    metric = load_profile(result["profile"]).scoring.metric
+    summary = summarise(result, metric)
+    if a.json:
+        print(json.dumps(summary))
+    else:
+        print_table(summary)
+    for q in summary["quarantined"]:
+        print(f"quarantined {q['recording_id']}: {q['reason']}", file=sys.stderr)
+    return EXIT_QUARANTINED if summary["quarantined"] else EXIT_OK
+
+
+def cmd_demo(a) -> int:
+    root = Path(__file__).resolve().parent.parent
+    inbox = Path(a.inbox) if a.inbox else root / "sample_raw"
+    store = Path(a.store) if a.store else root / "demo_out" / "store"
+    result = do_run(str(inbox), str(store), None, "local", None, 60.0, progress=True)
+    from fleetsift.profile import load_profile
+
+    summary = summarise(result, load_profile(result["profile"]).scoring.metric)
+    print_table(summary)
+    labels = inbox / "labels.csv"
+    if labels.exists():
+        from flows.evaluate import evaluate_store
+
+        ev = evaluate_store(str(store), result["run_id"], str(labels))
+        print("ROC AUC against the demo labels: " + ", ".join(f"{m} {v:.3f}" for m, v in ev["auc"].items()
+                                                             if v is not None))
+    return EXIT_QUARANTINED if summary["quarantined"] else EXIT_OK
+
+
+def cmd_make_sample(a) -> int:
+    from fleetsift import demo_fleet
+
+    names = demo_fleet.make_fleet(a.out, n_recordings=a.recordings, duration_s=a.seconds, seed=a.seed)
+    print(f"wrote {len(names)} recordings to {a.out}")
+    return EXIT_OK
+
+
+def cmd_evaluate(a) -> int:
+    from fleetsift.errors import InputError, StoreLockedError
+
+    store = a.store or tempfile.mkdtemp(prefix="fleetsift-eval-")
+    try:
+        result = do_run(a.inbox, store, a.profile, "local", None, a.wait, progress=not a.json, report=False)
+        from flows.evaluate import evaluate_store
+
+        ev = evaluate_store(store, result["run_id"], a.labels, plot=a.plot)
+    except (InputError, StoreLockedError) as e:
+        print(f"fleetsift: {e}", file=sys.stderr)
+        return EXIT_ERROR
+    if a.json:
+        print(json.dumps(ev))
+    else:
+        for m, v in ev["auc"].items():
+            se = ev.get("auc_se", {}).get(m)
+            print(f"{m:<10} ROC AUC {v:.3f}" + (f" +- {se:.3f}" if se is not None else ""))
+        print(f"windows {ev['n_windows']}, anomalous {ev['n_anomalous']}")
+    return EXIT_OK
+
+
+def cmd_report(a) -> int:
+    env.configure(a.store)
+    from flows.report import write_report
+
+    path = write_report(a.store, a.run, a.out, as_of=a.as_of)
+    print(path)
+    return EXIT_OK
+
+
+def cmd_history(a) -> int:
+    from fleetsift.store import Store
+
+    hist = Store(a.store).runs_history()
+    if a.json:
+        print(hist.to_json(orient="records", date_format="iso"))
+    else:
+        print(hist.to_string(index=False) if len(hist) else "no runs yet")
+    return EXIT_OK
+
+
+def cmd_serve(a) -> int:
+    env.configure(a.store)
+    from flows.serve import serve
+
+    return serve(inbox=a.inbox, store=a.store, cron=a.cron, profile=a.profile, name=a.name)
+
+
+def build_parser() -> argparse.ArgumentParser:
+    p = argparse.ArgumentParser(prog="fleetsift", description="Screen fleet recordings for abnormal windows. "
+                                + SAFETY_NOTE)
+    sub = p.add_subparsers(dest="command", required=True)
+
+    r = sub.add_parser("run", help="score every new or changed recording in an inbox into a results store")
+    r.add_argument("--inbox", required=True)
+    r.add_argument("--store", required=True)
+    r.add_argument("--profile")
+    r.add_argument("--runner", choices=("local", "dask"), default="local")
+    r.add_argument("--dask-address")
+    r.add_argument("--wait", type=float, default=0.0, help="seconds to wait for another run's store lock")
+    r.add_argument("--json", action="store_true")
+    r.set_defaults(fn=cmd_run)
+
+    e = sub.add_parser("evaluate", help="score an inbox and compare with labelled anomalous intervals")
+    e.add_argument("--inbox", required=True)
+    e.add_argument("--labels", required=True)
+    e.add_argument("--profile")
+    e.add_argument("--store", help="store to use (default: a scratch folder)")
+    e.add_argument("--plot", help="write ROC curves to this PNG")
+    e.add_argument("--wait", type=float, default=0.0)
+    e.add_argument("--json", action="store_true")
+    e.set_defaults(fn=cmd_evaluate)
+
+    rp = sub.add_parser("report", help="write a self-contained HTML report of a run")
+    rp.add_argument("--store", required=True)
+    rp.add_argument("--run")
+    rp.add_argument("--as-of", type=int, dest="as_of", help="store version to read (time travel)")
+    rp.add_argument("--out", required=True)
+    rp.set_defaults(fn=cmd_report)
+
+    h = sub.add_parser("history", help="list the store's runs and versions")
+    h.add_argument("--store", required=True)
+    h.add_argument("--json", action="store_true")
+    h.set_defaults(fn=cmd_history)
+
+    s = sub.add_parser("serve", help="serve the nightly run on a cron schedule against a Prefect server")
+    s.add_argument("--inbox", required=True)
+    s.add_argument("--store", required=True)
+    s.add_argument("--cron", default="0 2 * * *")
+    s.add_argument("--profile")
+    s.add_argument("--name", default="nightly")
+    s.set_defaults(fn=cmd_serve)
+
+    d = sub.add_parser("demo", help="run the whole job on the bundled demo fleet and write the report")
+    d.add_argument("--inbox", help=argparse.SUPPRESS)
+    d.add_argument("--store", help="store folder (default demo_out/store)")
+    d.set_defaults(fn=cmd_demo)
+
+    m = sub.add_parser("make-sample", help="generate a demo fleet of warehouse rover recordings")
+    m.add_argument("--out", required=True)
+    m.add_argument("--recordings", type=int, default=8)
+    m.add_argument("--seconds", type=float, default=60.0)
+    m.add_argument("--seed", type=int, default=7)
+    m.set_defaults(fn=cmd_make_sample)
+    return p
+
+
+def main(argv: list[str] | None = None) -> int:
+    args = build_parser().parse_args(argv)
+    return int(args.fn(args) or 0)
+
+
+if __name__ == "__main__":
+    sys.exit(main())

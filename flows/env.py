@@ -1,0 +1,32 @@
+"""Process environment for a run: Prefect's state, Matplotlib's and Dask's scratch go inside the store folder.
+
+Must run before `prefect` is imported: Prefect reads its settings at import time.
+"""
+
+from __future__ import annotations
+
+import os
+from pathlib import Path
+
+
+def configure(store_root: str | Path) -> None:
+    root = Path(store_root).resolve()
+    home = root / "prefect"
+    home.mkdir(parents=True, exist_ok=True)
+    defaults = {
+        "PREFECT_SERVER_ANALYTICS_ENABLED": "false",
+        "PREFECT_SERVER_EPHEMERAL_STARTUP_TIMEOUT_SECONDS": "180",
+        "PREFECT_LOGGING_LEVEL": "WARNING",
+        "PREFECT_RESULTS_PERSIST_BY_DEFAULT": "false",
+        "MPLCONFIGDIR": str(root / ".mpl"),
+        "DASK_TEMPORARY_DIRECTORY": str(root / ".dask"),
+    }
+    if not os.environ.get("PREFECT_API_URL"):
+        # No team server: the embedded temporary server keeps its SQLite database in the store, not in ~/.prefect.
+        defaults.update({
+            "PREFECT_HOME": str(home),
+            "PREFECT_API_DATABASE_CONNECTION_URL": f"sqlite+aiosqlite:///{home / 'prefect.db'}",
+            "PREFECT_LOCAL_STORAGE_PATH": str(home / "storage"),
+        })
+    for k, v in defaults.items():
+        os.environ.setdefault(k, v)

@@ -1,0 +1,257 @@
+"""Prefect tasks: each loads its inputs, calls the featurizers, persists its output in the store and returns paths.
+
+Every stage output is stored under stage_key(content hash, the profile section the stage reads, code version), so
+a warm night reuses everything unchanged and an IMU-calibration change never re-decodes video. The plain functions
+(`run_*`) do the work and are what tests call; the `@task` wrappers at the bottom are all Prefect sees.
+"""
+
+from __future__ import annotations
+
+import json
+import sys
+import time
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pandas as pd
+from prefect import task
+from prefect.cache_policies import NONE
+
+from fleetsift.errors import InputError
+from fleetsift.profile import Profile, VideoStream
+from fleetsift.store import Store, code_version, stage_key
+from featurizers import descriptors, embed, fleet, recording, scoring, spd, tables, video
+
+_BACKBONES: dict[tuple, Any] = {}
+
+
+def _tables_version() -> str:
+    return code_version(tables, recording)
+
+
+def _embed_version() -> str:
+    return code_version(video, embed)
+
+
+def _score_version() -> str:
+    return code_version(fleet, descriptors, scoring, spd)
+
+
+def recording_hash(store: Store, rec_dir: Path, files: list[Path]) -> str:
+    import hashlib
+
+    h = hashlib.sha256()
+    for f in sorted(files):
+        h.update(f.name.encode())
+        if f.is_dir():  # a ROS 2 bag folder
+            for sub in sorted(p for p in f.rglob("*") if p.is_file()):
+                h.update(store.file_hash(sub).encode())
+        else:
+            h.update(store.file_hash(f).encode())
+    return h.hexdigest()[:16]
+
+
+def quarantined(rec_id: str, reason: str, **extra) -> dict:
+    return {"recording_id": rec_id, "status": "quarantined", "reason": reason, **extra}
+
+
+def run_tables(rec_dir: str, profile: Profile, store_root: str) -> dict:
+    """Table streams -> calibrated, resampled common clock (one .npz per recording)."""
+    store = Store(store_root)
+    rec_dir = Path(rec_dir)
+    rec_id = rec_dir.name
+    try:
+        streams = profile.table_streams()
+        files = [recording.resolve_stream_file(rec_dir, s.file, s.name) for s in streams]
+        content = recording_hash(store, rec_dir, files)
+        section = {"streams": {s.name: profile.section(f"streams.{s.name}") for s in streams},
+                   "rate_hz": profile.windowing.rate_hz, "max_gap_s": profile.windowing.max_gap_s}
+        key = stage_key("tables", content, section, _tables_version())
+        out = store.cache_path("tables", key)
+        if out.exists():
+            meta = json.loads(str(Store.load_arrays(out)["meta"]))
+            return {"recording_id": rec_id, "status": "ok", "path": str(out), "reused": True, "content": content,
+                    **meta}
+        raws = [recording.read_table_stream(rec_dir, s) for s in streams]
+        t0, t, values, valid, names = recording.common_clock(raws, profile.windowing.rate_hz,
+                                                             profile.windowing.max_gap_s)
+        if len(t) < 2:
+            raise InputError(rec_dir, "time span", "a recording longer than two clock samples", f"{len(t)} samples")
+        repairs = {Path(r.file).name: r.repairs for r in raws if r.repairs}
+        meta = {"t0": t0, "duration_s": float(t[-1] - t[0]), "channels": names, "repairs": repairs,
+                "valid_share": float(valid.mean())}
+        store.save_arrays(out, t=t, values=values, valid=valid, meta=np.array(json.dumps(meta)))
+        return {"recording_id": rec_id, "status": "ok", "path": str(out), "reused": False, "content": content, **meta}
+    except InputError as e:
+        return quarantined(rec_id, str(e))
+
+
+def _backbone(stream: VideoStream):
+    key = (stream.backbone, stream.weights, stream.image_size, stream.threads)
+    if key not in _BACKBONES:
+        _BACKBONES[key] = embed.load_backbone(stream.backbone, weights=stream.weights or None,
+                                              threads=stream.threads, image_size=stream.image_size)
+    return _BACKBONES[key]
+
+
+def _frames(path: Path, stream: VideoStream):
+    if stream.topic:
+        from featurizers import logs
+
+        return logs.iter_bag_images(path, stream.topic, stream.sample_hz, stamp=stream.stamp)
+    return video.iter_frames(path, stream.sample_hz)
+
+
+def _bar_to(bar):
+    def update(done: int) -> None:  # embed_frames reports the cumulative count
+        bar.update(done - bar.n)
+    return update
+
+
+def run_embed(rec_dir: str, profile: Profile, store_root: str, progress: bool = True) -> dict:
+    """Video streams -> per-frame backbone embeddings at their presentation timestamps (one .npz per stream)."""
+    store = Store(store_root)
+    rec_dir = Path(rec_dir)
+    rec_id = rec_dir.name
+    outputs = {}
+    reused = computed = 0
+    try:
+        for stream in profile.video_streams():
+            path = recording.resolve_stream_file(rec_dir, stream.file, stream.name)
+            content = recording_hash(store, rec_dir, [path])
+            weights_fp = embed.backbone_fingerprint(stream.backbone, stream.weights or None)
+            # Clock offset, PCA size and thread count do not change the embeddings: they stay out of the key.
+            section = {"file": stream.file, "topic": stream.topic, "stamp": stream.stamp,
+                       "sample_hz": stream.sample_hz, "backbone": stream.backbone, "weights": weights_fp,
+                       "image_size": stream.image_size}
+            key = stage_key("embed", content, section, _embed_version())
+            out = store.cache_path("embed", key)
+            if out.exists():
+                reused += 1
+            else:
+                bb = _backbone(stream)
+                bar = None
+                if progress:
+                    from tqdm import tqdm
+
+                    info = video.probe_video(path) if not stream.topic else {}
+                    total = int(info.get("duration_s", 0) * stream.sample_hz) or None
+                    bar = tqdm(total=total, desc=f"embed {rec_id}/{stream.name}", unit="frame", file=sys.stderr,
+                               leave=False, mininterval=1.0)
+                t, e = embed.embed_frames(_frames(path, stream), bb, batch_size=stream.batch_size,
+                                          progress=(_bar_to(bar) if bar else None))
+                if bar:
+                    bar.close()
+                if len(t) == 0:
+                    raise InputError(path, f"streams.{stream.name}", "a video with decodable frames", "no frames")
+                store.save_arrays(out, t=t, emb=e.astype(np.float32))
+                computed += 1
+            outputs[stream.name] = str(out)
+        return {"recording_id": rec_id, "status": "ok", "paths": outputs, "reused": reused, "computed": computed}
+    except InputError as e:
+        return quarantined(rec_id, str(e))
+
+
+def load_features(profile: Profile, tab: dict, emb: dict) -> fleet.RecordingFeatures:
+    arr = Store.load_arrays(tab["path"])
+    meta = json.loads(str(arr["meta"]))
+    videos = []
+    for stream in profile.video_streams():
+        e = Store.load_arrays(emb["paths"][stream.name])
+        # Frame pts -> common clock: add the stream's clock offset, then measure from the recording's first sample.
+        videos.append((stream.name, e["t"].astype(np.float64) + stream.clock_offset_s - meta["t0"], e["emb"]))
+    return fleet.RecordingFeatures(recording_id=tab["recording_id"], t=arr["t"], table_values=arr["values"],
+                                   table_valid=arr["valid"].astype(bool), table_channels=list(meta["channels"]),
+                                   videos=videos)
+
+
+def run_score(prepared: list[dict], profile: Profile, store_root: str, run_id: str) -> dict:
+    """Fit the baseline on the batch and score every window; writes the run's window rows to a staging Parquet."""
+    store = Store(store_root)
+    recs, keys = [], []
+    for p in prepared:
+        recs.append(load_features(profile, p["tables"], p["embed"]))
+        keys.append([p["tables"]["path"], sorted(p["embed"].get("paths", {}).values())])
+    section = {k: profile.section(k) for k in ("windowing", "descriptor", "scoring", "baseline")}
+    section["pca"] = {s.name: s.pca_dim for s in profile.video_streams()}
+    section["offsets"] = {s.name: s.clock_offset_s for s in profile.video_streams()}
+    key = stage_key("score", json.dumps(keys), section, _score_version())
+    out = store.cache_path("score", key).with_suffix(".parquet")
+    if out.exists():
+        meta = json.loads(out.with_suffix(".json").read_text())
+        return {"path": str(out), "reused": True, **meta}
+    pca_dims = {s.name: s.pca_dim for s in profile.video_streams()}
+    gaps = {s.name: fleet.video_gap_s(s.sample_hz, profile.windowing.max_gap_s) for s in profile.video_streams()}
+    res = fleet.score_fleet(recs, windowing=profile.windowing, descriptor=profile.descriptor,
+                            scoring_cfg=profile.scoring, pca_dims=pca_dims, video_gaps=gaps,
+                            baseline_recordings=list(profile.baseline.recordings) or None)
+    bl = res.baseline
+    bpath = store.root / "baselines" / f"{bl.baseline_id}.npz"
+    if not bpath.exists():
+        arrays = {"center": bl.center, "scale": bl.scale, "channels": np.array(bl.channels),
+                  "reference_recordings": np.array(bl.reference_recordings)}
+        for name, p in bl.pca.items():
+            for k, v in p.items():
+                arrays[f"pca.{name}.{k}"] = v
+        for m, b in bl.per_metric.items():
+            arrays[f"{m}.references"] = b.references
+            arrays[f"{m}.mean"] = b.mean
+            arrays[f"{m}.threshold"] = np.float64(b.threshold)
+            arrays[f"{m}.loo_scores"] = b.loo_scores
+        store.save_arrays(bpath, **arrays)
+    rows = []
+    for w in res.windows:
+        n = len(w.t_start)
+        for m in fleet.METRICS:
+            rows.append(pd.DataFrame({
+                "recording_id": w.recording_id, "window_index": np.arange(n, dtype=np.int64),
+                "t_start_s": w.t_start, "t_end_s": w.t_end, "metric": m, "score": w.scores[m],
+                "threshold": float(bl.per_metric[m].threshold), "flagged": w.flagged[m].astype(bool),
+                "top_channels": w.top_channels if m == profile.scoring.metric else [""] * n,
+            }))
+    df = pd.concat(rows, ignore_index=True)
+    df.to_parquet(out.with_suffix(".tmp.parquet"), index=False)
+    Path(out.with_suffix(".tmp.parquet")).replace(out)
+    meta = {"baseline_id": bl.baseline_id, "channels": res.channels,
+            "thresholds": {m: float(b.threshold) for m, b in bl.per_metric.items()}}
+    out.with_suffix(".json").write_text(json.dumps(meta))
+    return {"path": str(out), "reused": False, **meta}
+
+
+def run_write(store_root: str, run_id: str, started_at: float, profile: Profile, code_ver: str,
+              rec_rows: list[dict], score: dict | None) -> dict:
+    """Append the run to the Delta tables: recordings, then windows, then runs (the run's commit marker)."""
+    store = Store(store_root)
+    rec_df = pd.DataFrame(rec_rows, columns=["recording_id", "content_hash", "duration_s", "status", "reason"])
+    rec_df.insert(0, "run_id", run_id)
+    store.append("recordings", rec_df)
+    n_windows = n_flagged = 0
+    baseline_id = ""
+    if score is not None:
+        w = pd.read_parquet(score["path"])
+        w.insert(0, "run_id", run_id)
+        w["baseline_id"] = score["baseline_id"]
+        baseline_id = score["baseline_id"]
+        store.append("windows", w)
+        prim = w[w["metric"] == profile.scoring.metric]
+        n_windows = int(prim["score"].notna().sum())
+        n_flagged = int(prim["flagged"].sum())
+    n_q = int((rec_df["status"] == "quarantined").sum())
+    runs = pd.DataFrame([{
+        "run_id": run_id, "started_at": pd.Timestamp(started_at, unit="s", tz="UTC"),
+        "finished_at": pd.Timestamp(time.time(), unit="s", tz="UTC"), "code_version": code_ver,
+        "profile_hash": profile.digest(), "baseline_id": baseline_id, "n_recordings": len(rec_df),
+        "n_scored": int((rec_df["status"] == "scored").sum()), "n_quarantined": n_q, "n_windows": n_windows,
+        "n_flagged": n_flagged, "status": "ok" if n_q == 0 else "partial",
+    }])
+    store.append("runs", runs)
+    return {"version": store.version("runs"), "windows_version": store.version("windows")}
+
+
+# --- Prefect tasks: thin wrappers. Our own content-addressed keys do the caching, so Prefect's is off. ----------
+
+tables_task = task(name="tables", cache_policy=NONE, persist_result=False)(run_tables)
+embed_task = task(name="embed", cache_policy=NONE, persist_result=False)(run_embed)
+score_task = task(name="score", cache_policy=NONE, persist_result=False)(run_score)
+write_task = task(name="write-store", cache_policy=NONE, persist_result=False)(run_write)

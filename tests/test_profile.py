@@ -1,0 +1,82 @@
+"""Sensor profile parsing and validation: every error names the file, the key, what was expected and found."""
+
+import pytest
+
+from fleetsift.errors import ProfileError
+from fleetsift.profile import load_profile, parse_profile
+
+GOOD = """
+[windowing]
+rate_hz = 50.0
+window_s = 4.0
+hop_s = 2.0
+
+[scoring]
+k = 3
+
+[streams.imu]
+kind = "table"
+file = "imu.csv"
+channels = ["ax", "ay", "az"]
+[streams.imu.calibration]
+ax = { bias = 0.1, scale = 2.0 }
+
+[streams.camera]
+kind = "video"
+file = "camera.mp4"
+clock_offset_s = -0.35
+pca_dim = 3
+"""
+
+
+def test_good_profile_parses_with_defaults():
+    p = parse_profile(GOOD, "fleet.toml")
+    assert p.windowing.rate_hz == 50.0 and p.windowing.max_gap_s == 0.25
+    assert p.scoring.k == 3 and p.scoring.metric == "riemann"
+    imu = p.streams["imu"]
+    assert imu.channels == ("ax", "ay", "az") and imu.calibration["ax"].bias == 0.1
+    cam = p.streams["camera"]
+    assert cam.clock_offset_s == -0.35 and cam.pca_dim == 3 and cam.backbone == "efficientnet_lite0"
+    assert [s.name for s in p.table_streams()] == ["imu"]
+
+
+def test_section_hash_changes_only_with_that_section():
+    a = parse_profile(GOOD)
+    b = parse_profile(GOOD.replace("bias = 0.1", "bias = 0.2"))
+    assert a.section("streams.imu") != b.section("streams.imu")
+    assert a.section("streams.camera") == b.section("streams.camera")
+    assert a.digest() != b.digest()
+
+
+@pytest.mark.parametrize("text, key, expected", [
+    (GOOD.replace("k = 3", "kk = 3"), "scoring.kk", "known keys"),
+    (GOOD.replace("k = 3", 'k = "three"'), "scoring.k", "an integer"),
+    (GOOD.replace("rate_hz = 50.0", "rate_hz = -1.0"), "windowing.rate_hz", "> 0"),
+    (GOOD.replace('file = "imu.csv"', 'file = "../other/imu.csv"'), "streams.imu.file", "inside the recording"),
+    (GOOD.replace('file = "imu.csv"', 'file = "/etc/passwd"'), "streams.imu.file", "inside the recording"),
+    (GOOD.replace('kind = "video"', 'kind = "movie"'), "streams.camera.kind", "one of"),
+    (GOOD.replace("ax = { bias", "zz = { bias"), "streams.imu.calibration.zz", "calibration for one of"),
+    (GOOD.replace("scale = 2.0", "scale = 0.0"), "streams.imu.calibration.ax.scale", "non-zero"),
+    (GOOD + "\n[extra]\nx = 1\n", "extra", "known keys"),
+    ("[windowing\nrate_hz = 1", "TOML syntax", "valid TOML"),
+])
+def test_bad_profiles_name_file_key_and_expectation(text, key, expected):
+    with pytest.raises(ProfileError) as e:
+        parse_profile(text, "fleet.toml")
+    err = e.value
+    assert err.file == "fleet.toml"
+    assert err.field == key
+    assert expected in err.expected
+    assert str(err).startswith(f"fleet.toml: {key}: expected")
+
+
+def test_missing_profile_file(tmp_path):
+    with pytest.raises(ProfileError) as e:
+        load_profile(tmp_path / "nope.toml")
+    assert "nope.toml" in str(e.value) and "no such file" in str(e.value)
+
+
+def test_channel_names_unique_across_streams():
+    text = GOOD + '\n[streams.imu2]\nkind = "table"\nfile = "b.csv"\nchannels = ["ax"]\n'
+    with pytest.raises(ProfileError, match="unique across streams"):
+        parse_profile(text)
