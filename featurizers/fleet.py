@@ -67,6 +67,22 @@ def video_gap_s(sample_hz: float, max_gap_s: float) -> float:
     return max(max_gap_s, 2.5 / sample_hz)
 
 
+def video_channels(emb: np.ndarray, pca: dict[str, np.ndarray]) -> np.ndarray:
+    """Per frame: the PCA scores of its embedding plus the log of its squared distance to the PCA subspace.
+
+    The residual (the Q statistic of PCA process monitoring, Jackson & Mudholkar 1979) carries what the baseline's
+    principal components cannot express, such as an object never seen in normal operation; the leading scores
+    mostly follow where the vehicle is. The log makes its distribution closer to symmetric (common practice).
+    """
+    n_comp = pca["components"].shape[0]
+    if len(emb) == 0:
+        return np.zeros((0, n_comp + 1))
+    x = emb.astype(np.float64) - pca["mean"]
+    z = x @ pca["components"].T
+    resid = np.maximum((x * x).sum(axis=1) - (z * z).sum(axis=1), 1e-12)
+    return np.column_stack([z, np.log(resid)])
+
+
 def channel_matrix(rec: RecordingFeatures, pca: dict[str, dict[str, np.ndarray]], video_gaps: dict[str, float]
                    ) -> tuple[np.ndarray, np.ndarray, list[str]]:
     """All channels of one recording on its clock: table channels then each video's PCA components."""
@@ -74,12 +90,11 @@ def channel_matrix(rec: RecordingFeatures, pca: dict[str, dict[str, np.ndarray]]
     valid = rec.table_valid.copy()
     names = list(rec.table_channels)
     for name, t_frames, emb in rec.videos:
-        z = apply_pca(emb.astype(np.float64), pca[name]) if len(emb) else np.zeros((0, len(pca[name]["mean"])))
-        z = z if len(emb) else np.zeros((0, pca[name]["components"].shape[0]))
+        z = video_channels(emb, pca[name])
         zc, zv = place_on_clock(t_frames, z, rec.t, video_gaps[name])
         cols.append(zc)
         valid &= zv
-        names += [f"{name}.pc{i + 1}" for i in range(zc.shape[1])]
+        names += [f"{name}.pc{i + 1}" for i in range(pca[name]["components"].shape[0])] + [f"{name}.residual"]
     return np.column_stack(cols), valid, names
 
 

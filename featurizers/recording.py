@@ -19,24 +19,44 @@ LOG_SUFFIXES = (".ulg", ".mcap", ".db3")
 def resolve_stream_file(rec_dir: Path, pattern: str, stream: str) -> Path:
     """The one file in the recording folder that a stream's `file` (name or glob) names."""
     rec_dir = Path(rec_dir).resolve()
-    matches = sorted(p for p in rec_dir.glob(pattern) if p.resolve().is_relative_to(rec_dir))
+    field = f"streams.{stream}.file"
+    try:
+        found = sorted(rec_dir.glob(pattern))
+    except (ValueError, NotImplementedError) as e:  # e.g. an absolute or empty pattern, an embedded NUL
+        raise InputError(rec_dir, field, "a file name or glob inside the recording folder",
+                         f"{pattern!r} ({e})") from None
+    # A symbolic link that leads out of the folder is refused, not silently skipped: say where it leads.
+    outside = [p for p in found if not p.resolve().is_relative_to(rec_dir)]
+    matches = [p for p in found if p not in outside]
+    if not matches and outside:
+        raise InputError(outside[0], field, "a file inside the recording folder",
+                         f"a link to {outside[0].resolve()}")
     if not matches:
+        # glob skips dangling links: name one that matches instead of listing it as if it were there.
+        broken = sorted(p for p in rec_dir.iterdir() if p.is_symlink() and not p.exists() and p.match(pattern)) \
+            if rec_dir.is_dir() else []
+        if broken:
+            raise InputError(broken[0], field, "a regular file", f"a broken link to {broken[0].resolve()}")
         have = sorted(p.name for p in rec_dir.iterdir()) if rec_dir.is_dir() else []
-        raise InputError(rec_dir, f"streams.{stream}.file", f"a file matching {pattern!r}", f"folder holds {have}")
+        raise InputError(rec_dir, field, f"a file matching {pattern!r}", f"folder holds {have}")
     if len(matches) > 1:
-        raise InputError(rec_dir, f"streams.{stream}.file", f"exactly one file matching {pattern!r}",
+        raise InputError(rec_dir, field, f"exactly one file matching {pattern!r}",
                          f"{[m.name for m in matches]}")
     path = matches[0]
-    if not path.resolve().is_relative_to(rec_dir):
-        raise InputError(rec_dir, f"streams.{stream}.file", "a file inside the recording folder", str(path))
     if not (path.is_file() or (path.is_dir() and (path / "metadata.yaml").exists())):
-        raise InputError(path, f"streams.{stream}.file", "a regular file", "not a file")
+        if path.is_symlink() and not path.exists():
+            got = f"a broken link to {path.resolve()}"
+        elif path.is_dir():
+            got = "a directory (not a ROS 2 bag: no metadata.yaml)"
+        else:
+            got = "not a regular file (a device, socket or pipe)"
+        raise InputError(path, field, "a regular file", got)
     try:
         if path.is_file():
             with open(path, "rb") as f:
                 f.read(1)
     except OSError as e:
-        raise InputError(path, f"streams.{stream}.file", "a readable file", e.strerror or str(e)) from None
+        raise InputError(path, field, "a readable file", e.strerror or str(e)) from None
     return path
 
 
@@ -80,6 +100,13 @@ def common_clock(tables: list[RawTable], rate_hz: float, max_gap_s: float
     cols, valid, names = [], np.ones(len(clock), bool), []
     for tb in tables:
         x, v = resample(tb, clock, max_gap_s)
+        if len(clock) and not v.any():
+            # Every clock instant falls in a gap of this stream: no window could ever be valid. Usually a wrong
+            # time_unit (ms declared as s makes a 100 Hz stream look like 0.1 Hz) or a stream slower than max_gap_s.
+            med = float(np.median(np.diff(tb.t)))
+            raise InputError(tb.file, "time_unit / windowing.max_gap_s",
+                             f"sample intervals of at most max_gap_s = {max_gap_s:g} s",
+                             f"a median interval of {med:.3g} s, so every window would straddle a gap")
         cols.append(x)
         valid &= v
         names += tb.channels

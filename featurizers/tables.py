@@ -5,6 +5,7 @@ Pure computation; errors are `InputError`s that name the file, the field and wha
 
 from __future__ import annotations
 
+import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -38,16 +39,27 @@ def read_table_file(path: Path, time_column: str, channels: list[str]) -> tuple[
         if suffix in (".parquet", ".pq"):
             df = pd.read_parquet(path)
         elif suffix in (".csv", ".txt", ".tsv"):
-            df = pd.read_csv(path, sep="\t" if suffix == ".tsv" else ",", low_memory=False)
+            with warnings.catch_warnings():
+                # index_col=False: without it a first data row with one field more than the header silently turns
+                # the time column into the index and shifts every column by one. The warning pandas then gives
+                # (extra fields dropped) becomes an error: samples must never be dropped unseen.
+                warnings.simplefilter("error", pd.errors.ParserWarning)
+                df = pd.read_csv(path, sep="\t" if suffix == ".tsv" else ",", low_memory=False, index_col=False)
         else:
             raise InputError(path, "file type", "a .csv or .parquet table (or a ULog / ROS 2 bag log)", suffix)
     except InputError:
         raise
     except pd.errors.EmptyDataError:
         raise InputError(path, "content", "a header row and samples", "an empty file") from None
+    except pd.errors.ParserWarning:
+        raise InputError(path, "content", "rows with as many fields as the header",
+                         "more fields than header names in the first data row") from None
     except (OSError, ValueError, pd.errors.ParserError) as e:
         raise InputError(path, "content", "a readable table", f"{type(e).__name__}: {e}") from None
     df.columns = [str(c).strip() for c in df.columns]
+    dup = sorted({c for c in df.columns if list(df.columns).count(c) > 1})
+    if dup:
+        raise InputError(path, f"column {dup[0]!r}", "distinct column names", f"columns {list(df.columns)}")
     if time_column not in df.columns:
         raise InputError(path, f"column {time_column!r}", "the time column named in the profile",
                          f"columns {list(df.columns)}")
@@ -65,7 +77,11 @@ def read_table_file(path: Path, time_column: str, channels: list[str]) -> tuple[
 def _numeric(col: pd.Series, path: Path, name: str) -> np.ndarray:
     if pd.api.types.is_numeric_dtype(col) and not pd.api.types.is_bool_dtype(col):
         return col.to_numpy(dtype=np.float64)
-    conv = pd.to_numeric(col, errors="coerce")
+    try:
+        conv = pd.to_numeric(col, errors="coerce")
+    except (TypeError, ValueError):  # cells holding lists or structs (Parquet): not coercible at all
+        raise InputError(path, f"column {name!r}", "a column of numbers", f"cells of type {type(col.iloc[0]).__name__}"
+                         ) from None
     bad = conv.isna() & col.notna() & (col.astype(str).str.strip().str.lower() != "nan")
     if bad.any():
         row = int(np.flatnonzero(bad.to_numpy())[0])
@@ -79,6 +95,8 @@ def clean_table(file: str, t_raw: np.ndarray, values: np.ndarray, channels: list
     n = len(t_raw)
     if n < 2:
         raise InputError(file, "rows", "at least 2 samples", f"{n}")
+    if time_unit not in TIME_UNITS:
+        raise InputError(file, "time_unit", f"one of {list(TIME_UNITS)}", repr(time_unit))
     repairs: dict[str, int] = {}
     t = np.asarray(t_raw, np.float64) * TIME_UNITS[time_unit]
     values = np.asarray(values, np.float64).copy()

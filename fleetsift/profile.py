@@ -169,7 +169,10 @@ class _Checker:
         full = f"{where}.{key}"
         if isinstance(v, bool) or not isinstance(v, (int, float)):
             self.fail(full, "a number", _type_name(v))
-        v = float(v)
+        try:
+            v = float(v)
+        except OverflowError:  # TOML integers are unbounded; float() is not
+            self.fail(full, "a number within the float range", f"int with {len(str(abs(v)))} digits")
         if finite and not math.isfinite(v):
             self.fail(full, "a finite number", v)
         if positive and not v > 0:

@@ -46,6 +46,7 @@ TABLE_SCHEMAS: dict[str, pa.Schema] = {
         ("n_windows", pa.int64()),
         ("n_flagged", pa.int64()),
         ("status", pa.string()),
+        ("inbox", pa.string()),
     ]),
     "recordings": pa.schema([
         ("run_id", pa.string()),
@@ -54,6 +55,7 @@ TABLE_SCHEMAS: dict[str, pa.Schema] = {
         ("duration_s", pa.float64()),
         ("status", pa.string()),
         ("reason", pa.string()),
+        ("path", pa.string()),
     ]),
     "windows": pa.schema([
         ("run_id", pa.string()),
@@ -111,7 +113,9 @@ class Store:
 
     # --- folders --------------------------------------------------------------------------------------------------
     def init(self) -> "Store":
-        for sub in ("cache", "baselines", "prefect", "reports"):
+        # Every stage's cache folder exists up front: a stage that writes a temporary file next to its output
+        # must not depend on an earlier atomic write having created the folder.
+        for sub in ("cache/tables", "cache/embed", "cache/score", "baselines", "prefect", "reports"):
             (self.root / sub).mkdir(parents=True, exist_ok=True)
         return self
 
@@ -208,7 +212,13 @@ class Store:
         assert len(run_ids) == 1, "one run per append"
         if self.has_run(table, str(run_ids[0])):
             return None
-        arrow = pa.Table.from_pandas(df[[f.name for f in schema]], schema=schema, preserve_index=False)
+        df = df[[f.name for f in schema]].copy()
+        for f in schema:
+            if pa.types.is_timestamp(f.type):
+                # The tables hold microseconds; a pandas timestamp built from time.time() carries nanoseconds,
+                # which pyarrow's safe cast refuses ("would lose data"). Truncate explicitly, nothing else.
+                df[f.name] = pd.to_datetime(df[f.name], utc=True).dt.floor("us")
+        arrow = pa.Table.from_pandas(df, schema=schema, preserve_index=False)
         write_deltalake(str(self.table_path(table)), arrow, mode="append")
         return self.version(table)
 
@@ -230,6 +240,39 @@ class Store:
         dataset = DeltaTable(str(path), version=version).to_pyarrow_dataset()
         flt = ds.field("run_id") == run_id if run_id else None
         return dataset.to_table(filter=flt).to_pandas()
+
+    def run_ids(self, table: str) -> set[str]:
+        """The distinct run_ids in one table (current version)."""
+        from deltalake import DeltaTable
+
+        path = self.table_path(table)
+        if not (path / "_delta_log").exists():
+            return set()
+        col = DeltaTable(str(path)).to_pyarrow_dataset().to_table(columns=["run_id"]).column("run_id")
+        return set(col.unique().to_pylist())
+
+    def orphan_runs(self) -> dict[str, set[str]]:
+        """Per table, the run_ids whose `runs` row (the run's commit marker, appended last) is missing.
+
+        A run killed between its appends leaves such rows; they belong to no completed run. Readers select rows
+        by a run_id taken from `runs`, so they never see them; `remove_orphans` deletes them.
+        """
+        done = self.run_ids("runs")
+        return {t: ids - done for t in ("recordings", "windows") if (ids := self.run_ids(t)) - done}
+
+    def remove_orphans(self) -> dict[str, int]:
+        """Delete the rows of runs that never committed (call under the write lock). Returns rows removed per table.
+
+        The deletion is one more Delta version: the rows stay readable by time travel until a vacuum.
+        """
+        from deltalake import DeltaTable
+
+        removed = {}
+        for table, ids in self.orphan_runs().items():
+            quoted = ", ".join("'" + i.replace("'", "''") + "'" for i in sorted(ids))
+            res = DeltaTable(str(self.table_path(table))).delete(f"run_id IN ({quoted})")
+            removed[table] = int(res.get("num_deleted_rows", 0))
+        return removed
 
     def runs_history(self) -> pd.DataFrame:
         """One row per run with the `runs` table version that committed it (for --as-of)."""
@@ -253,3 +296,24 @@ class Store:
         cols = ["version", "run_id", "finished_at", "n_recordings", "n_windows", "n_flagged", "n_quarantined",
                 "status", "baseline_id"]
         return pd.DataFrame(rows)[cols]
+
+    def maintain(self, retention_hours: float = 168.0) -> dict[str, dict]:
+        """Compact small files and vacuum files older than the retention; time travel inside it keeps working.
+
+        Vacuum only removes files that no version younger than the retention needs (Delta's own rule), so a
+        `--as-of` read of any version committed within `retention_hours` still succeeds.
+        """
+        from deltalake import DeltaTable
+
+        out = {}
+        for name in TABLES:
+            path = self.table_path(name)
+            if not (path / "_delta_log").exists():
+                continue
+            dt = DeltaTable(str(path))
+            metrics = dt.optimize.compact()
+            removed = dt.vacuum(retention_hours=int(retention_hours), dry_run=False,
+                                enforce_retention_duration=retention_hours >= 168)
+            out[name] = {"files_added": metrics.get("numFilesAdded"), "files_removed": metrics.get("numFilesRemoved"),
+                         "vacuumed": len(removed), "version": DeltaTable(str(path)).version()}
+        return out

@@ -205,6 +205,16 @@ def cmd_history(a) -> int:
     return EXIT_OK
 
 
+def cmd_maintain(a) -> int:
+    from fleetsift.store import Store
+
+    st = Store(a.store)
+    with st.lock(wait_s=a.wait):
+        out = st.maintain(retention_hours=a.retention_hours)
+    print(json.dumps(out) if a.json else "\n".join(f"{k}: {v}" for k, v in out.items()))
+    return EXIT_OK
+
+
 def cmd_serve(a) -> int:
     env.configure(a.store)
     from flows.serve import serve
@@ -248,6 +258,13 @@ def build_parser() -> argparse.ArgumentParser:
     h.add_argument("--store", required=True)
     h.add_argument("--json", action="store_true")
     h.set_defaults(fn=cmd_history)
+
+    mt = sub.add_parser("maintain", help="compact the store's tables and vacuum files outside the retention")
+    mt.add_argument("--store", required=True)
+    mt.add_argument("--retention-hours", type=float, default=168.0, dest="retention_hours")
+    mt.add_argument("--wait", type=float, default=0.0)
+    mt.add_argument("--json", action="store_true")
+    mt.set_defaults(fn=cmd_maintain)
 
     s = sub.add_parser("serve", help="serve the nightly run on a cron schedule against a Prefect server")
     s.add_argument("--inbox", required=True)

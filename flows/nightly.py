@@ -97,7 +97,7 @@ def nightly_flow(inbox: str, store: str, profile_path: str | None = None, run_id
                 rid = p["tables"]["recording_id"]
                 rec_rows[rid].update(status="quarantined", reason=f"fleet scoring: {e}")
     rows = [rec_rows[k] for k in sorted(rec_rows)]
-    written = stages.write_task(str(st.root), run_id, started, fleet, __version__, rows, score)
+    written = stages.write_task(str(st.root), run_id, started, fleet, __version__, rows, score, str(inbox_p))
     return {"run_id": run_id, "store": str(st.root), "store_version": written["version"],
             "windows_version": written["windows_version"], "score": score, "recordings": rows, "stages": stats,
             "profile": fleet.path, "elapsed_s": round(time.time() - started, 2)}

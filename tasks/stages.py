@@ -178,7 +178,7 @@ def run_score(prepared: list[dict], profile: Profile, store_root: str, run_id: s
     section["offsets"] = {s.name: s.clock_offset_s for s in profile.video_streams()}
     key = stage_key("score", json.dumps(keys), section, _score_version())
     out = store.cache_path("score", key).with_suffix(".parquet")
-    if out.exists():
+    if out.exists() and out.with_suffix(".json").exists():
         meta = json.loads(out.with_suffix(".json").read_text())
         return {"path": str(out), "reused": True, **meta}
     pca_dims = {s.name: s.pca_dim for s in profile.video_streams()}
@@ -211,19 +211,24 @@ def run_score(prepared: list[dict], profile: Profile, store_root: str, run_id: s
                 "top_channels": w.top_channels if m == profile.scoring.metric else [""] * n,
             }))
     df = pd.concat(rows, ignore_index=True)
-    df.to_parquet(out.with_suffix(".tmp.parquet"), index=False)
-    Path(out.with_suffix(".tmp.parquet")).replace(out)
+    out.parent.mkdir(parents=True, exist_ok=True)
+    tmp = out.with_suffix(".tmp")
+    df.to_parquet(tmp, index=False)
+    tmp.replace(out)
     meta = {"baseline_id": bl.baseline_id, "channels": res.channels,
             "thresholds": {m: float(b.threshold) for m, b in bl.per_metric.items()}}
-    out.with_suffix(".json").write_text(json.dumps(meta))
+    tmp = out.with_suffix(".json.tmp")
+    tmp.write_text(json.dumps(meta))
+    tmp.replace(out.with_suffix(".json"))
     return {"path": str(out), "reused": False, **meta}
 
 
 def run_write(store_root: str, run_id: str, started_at: float, profile: Profile, code_ver: str,
-              rec_rows: list[dict], score: dict | None) -> dict:
+              rec_rows: list[dict], score: dict | None, inbox: str = "") -> dict:
     """Append the run to the Delta tables: recordings, then windows, then runs (the run's commit marker)."""
     store = Store(store_root)
     rec_df = pd.DataFrame(rec_rows, columns=["recording_id", "content_hash", "duration_s", "status", "reason"])
+    rec_df["path"] = [str(Path(inbox) / r) if inbox else "" for r in rec_df["recording_id"]]
     rec_df.insert(0, "run_id", run_id)
     store.append("recordings", rec_df)
     n_windows = n_flagged = 0
@@ -243,7 +248,7 @@ def run_write(store_root: str, run_id: str, started_at: float, profile: Profile,
         "finished_at": pd.Timestamp(time.time(), unit="s", tz="UTC"), "code_version": code_ver,
         "profile_hash": profile.digest(), "baseline_id": baseline_id, "n_recordings": len(rec_df),
         "n_scored": int((rec_df["status"] == "scored").sum()), "n_quarantined": n_q, "n_windows": n_windows,
-        "n_flagged": n_flagged, "status": "ok" if n_q == 0 else "partial",
+        "n_flagged": n_flagged, "status": "ok" if n_q == 0 else "partial", "inbox": inbox,
     }])
     store.append("runs", runs)
     return {"version": store.version("runs"), "windows_version": store.version("windows")}

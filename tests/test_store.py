@@ -13,7 +13,7 @@ from fleetsift.store import Store, stage_key
 
 def _rec_rows(run_id, n=2):
     return pd.DataFrame({"run_id": run_id, "recording_id": [f"r{i}" for i in range(n)], "content_hash": "h",
-                         "duration_s": 60.0, "status": "scored", "reason": ""})
+                         "duration_s": 60.0, "status": "scored", "reason": "", "path": ""})
 
 
 def test_append_is_idempotent_and_versions_time_travel(tmp_path):
@@ -71,3 +71,15 @@ def test_stage_key_depends_on_each_part():
     assert base != stage_key("tables", "c2", {"bias": 0.0}, "v1")
     assert base != stage_key("tables", "c1", {"bias": 0.1}, "v1")
     assert base != stage_key("tables", "c1", {"bias": 0.0}, "v2")
+
+
+def test_maintain_compacts_and_keeps_time_travel_inside_retention(tmp_path):
+    st = Store(tmp_path).init()
+    for i in range(4):
+        st.append("recordings", _rec_rows(f"run-{i}"))
+    before = [len(st.read("recordings", version=v)) for v in range(4)]
+    out = st.maintain(retention_hours=168)
+    assert out["recordings"]["files_removed"] == 4 and out["recordings"]["files_added"] == 1
+    assert out["recordings"]["vacuumed"] == 0  # every file is younger than the retention
+    assert [len(st.read("recordings", version=v)) for v in range(4)] == before == [2, 4, 6, 8]
+    assert len(st.read("recordings")) == 8
