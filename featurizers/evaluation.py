@@ -68,3 +68,64 @@ def roc_curve(y: np.ndarray, score: np.ndarray) -> tuple[np.ndarray, np.ndarray]
     tpr = np.r_[0, tps / max(y.sum(), 1)]
     fpr = np.r_[0, fps / max((~y).sum(), 1)]
     return fpr, tpr
+
+
+# --------------------------------------------------------------------------------- descriptors for baselines
+
+def window_descriptors(recs, *, center: np.ndarray, scale: np.ndarray, pca: dict, video_gaps: dict[str, float],
+                       windowing, descriptor) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """The SPD descriptor of every valid window, as the fleet step computed it for a stored baseline.
+
+    ``recs`` are :class:`featurizers.fleet.RecordingFeatures`; ``center``/``scale``/``pca`` are a baseline's
+    channel standardisation and video PCA. Returns ``(descriptors (n, d, d), recording ids (n,), window indices
+    (n,))``; windows that straddle a gap are left out, as in the fleet step.
+    """
+    from featurizers import descriptors as desc
+    from featurizers import fleet
+
+    Ds, rids, idx = [], [], []
+    for r in recs:
+        x, v, _ = fleet.channel_matrix(r, pca, video_gaps)
+        z = (x - center) / scale
+        wins, ok, _, _ = fleet.recording_windows(z, v, r.t, windowing.rate_hz, windowing.window_s,
+                                                 windowing.hop_s)
+        if not ok.any():
+            continue
+        d, _ = desc.describe(wins[ok], kind=descriptor.kind, include_mean=descriptor.include_mean,
+                             lags=descriptor.lags, ridge=descriptor.ridge)
+        Ds.append(d)
+        rids += [r.recording_id] * len(d)
+        idx.append(np.flatnonzero(ok))
+    if not Ds:
+        raise ValueError("no valid window to describe")
+    return np.concatenate(Ds), np.asarray(rids), np.concatenate(idx).astype(np.int64)
+
+
+def tangent_vectors(descriptors: np.ndarray, mean: np.ndarray) -> np.ndarray:
+    """Tangent-space features: ``vec(logm(M^-1/2 X M^-1/2))`` with off-diagonals weighted by sqrt(2).
+
+    The tangent space mapping of Barachant et al. (2012, IEEE TBME 59:920); the Euclidean norm of each vector is
+    the affine-invariant distance of X to M, so vector-space detectors see (locally) the manifold's geometry.
+    """
+    from featurizers import spd
+
+    W = spd.invsqrtm(mean)
+    return spd.vec(spd.logm(W @ np.asarray(descriptors, np.float64) @ W))
+
+
+def outlier_baselines(features: np.ndarray, seed: int = 0, n_neighbors: int = 20) -> dict[str, np.ndarray]:
+    """Scores (higher = more unusual) of scikit-learn's IsolationForest (Liu et al. 2008) and LocalOutlierFactor
+    (Breunig et al. 2000, novelty=False) fitted on all windows, the same unsupervised setting as ours.
+
+    Unlike our kNN scoring these know nothing of recordings: overlapping windows of one event are each other's
+    nearest neighbours, which hides a long event from LOF (our exclusion zone exists for that reason).
+    """
+    from sklearn.ensemble import IsolationForest
+    from sklearn.neighbors import LocalOutlierFactor
+
+    X = np.asarray(features, np.float64)
+    if len(X) < 3:
+        raise ValueError(f"{len(X)} windows: too few for the outlier baselines")
+    iso = IsolationForest(n_estimators=200, random_state=seed).fit(X)
+    lof = LocalOutlierFactor(n_neighbors=min(n_neighbors, len(X) - 1), novelty=False).fit(X)
+    return {"isolation_forest": -iso.score_samples(X), "local_outlier_factor": -lof.negative_outlier_factor_}

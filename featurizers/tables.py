@@ -98,7 +98,9 @@ def clean_table(file: str, t_raw: np.ndarray, values: np.ndarray, channels: list
     if time_unit not in TIME_UNITS:
         raise InputError(file, "time_unit", f"one of {list(TIME_UNITS)}", repr(time_unit))
     repairs: dict[str, int] = {}
-    t = np.asarray(t_raw, np.float64) * TIME_UNITS[time_unit]
+    # The clock offset goes on first: added after de-duplication it can round two close stamps to one value
+    # (found by the fuzz test: 5e-292 and 0.0, plus 0.25 s), and the clock would no longer be increasing.
+    t = np.asarray(t_raw, np.float64) * TIME_UNITS[time_unit] + float(clock_offset_s)
     values = np.asarray(values, np.float64).copy()
 
     bad_t = ~np.isfinite(t)
@@ -142,7 +144,7 @@ def clean_table(file: str, t_raw: np.ndarray, values: np.ndarray, channels: list
         bias, scale = calibration.get(ch, (0.0, 1.0))
         if bias != 0.0 or scale != 1.0:
             values[:, j] = (values[:, j] - bias) * scale
-    return RawTable(file=file, t=t + clock_offset_s, values=values, channels=list(channels), repairs=repairs)
+    return RawTable(file=file, t=t, values=values, channels=list(channels), repairs=repairs)
 
 
 def uniform_clock(start: float, end: float, rate_hz: float) -> np.ndarray:

@@ -54,6 +54,8 @@ UPRIGHT = 0.08
 BEAMS = (0.85, 1.70, 2.55)  # beam bottoms; beams are 0.10 m tall
 LEVEL_BASES = (0.0, 0.95, 1.80)  # storage level floors (ground, beam 1 top, beam 2 top)
 CAM_H = 0.6  # camera height above the floor
+WHEEL_R = 0.075  # wheel radius
+HALF_TRACK = 0.2  # half the distance between the wheels: rim speed when turning on the spot
 PALLET_W, PALLET_H = 1.0, 1.3
 PERSON_W, PERSON_H = 0.5, 1.76
 
@@ -194,9 +196,10 @@ class Motion:
 
 def person_pos(p: dict, t: float) -> tuple[float, float] | None:
     """Where a crossing person is at time t: across the aisle, then off along the next aisle; None once gone."""
-    tau = t - p["t0"]
+    tau = max(t - p["t0"], 0.0)
     across = abs(p["y1"] - p["y0"])
-    walked = max(tau, 0.0) * p["speed"]
+    t_mid = p["pause_at"] / p["speed"]  # stops mid-aisle for a moment, then walks on
+    walked = p["speed"] * (min(tau, t_mid) + max(0.0, tau - t_mid - p["pause"]))
     if walked <= across:
         return p["x"], p["y0"] + math.copysign(walked, p["y1"] - p["y0"])
     if walked > across + 5.0:
@@ -257,7 +260,7 @@ def simulate(rng: np.random.Generator, duration_s: float, kinds: list[str]) -> M
         quiet = active is not None or any(e["kind"] == "bearing" and e["start_s"] - 3 <= t <= e["end_s"] + 1
                                           for e in events)
         if mode == "turn":
-            T = 3.2
+            T = 3.2  # s per 90-degree turn: peak yaw rate ~1 rad/s
             tau = t - turn_t0
             if tau >= T:
                 leg_i += 1
@@ -271,7 +274,7 @@ def simulate(rng: np.random.Generator, duration_s: float, kinds: list[str]) -> M
                 hd = heading_turn0 + d * (tau / T - math.sin(2 * math.pi * tau / T) / (2 * math.pi))
                 omega = d / T * (1 - math.cos(2 * math.pi * tau / T))
             v = 0.0
-            out[i] = (x, y, hd, 0.0, abs(omega) * 0.2)
+            out[i] = (x, y, hd, 0.0, abs(omega) * HALF_TRACK)
             continue
 
         # -- event triggers --------------------------------------------------------------------------------------
@@ -290,13 +293,13 @@ def simulate(rng: np.random.Generator, duration_s: float, kinds: list[str]) -> M
                 elif k == "pallet" and leg.kind == "aisle" and room >= 14 and v > 0.3:
                     s_p = s + min(11.5, room - 5.5)
                     s_stop = s_p - 0.6 - 1.8
-                    leg.swerves.append((s_stop, s_p - 0.6, s_p + 0.6, s_p + 2.8, 0.85))
+                    leg.swerves.append((s_stop, s_p - 0.6, s_p + 0.6, s_p + 2.4, 0.85))
                     px, py, _ = Leg(leg.p0, leg.psi, leg.length, "aisle", 0.0).pose(s_p)
                     off = -0.15  # pallet a little right of centre, leaving room on the left
                     world.pallets.append((px - off * math.sin(leg.psi), py + off * math.cos(leg.psi)))
-                    e.update(state="active", t_trigger=t, s_stop=s_stop, s_end=s_p + 2.8, waited=False)
+                    e.update(state="active", t_trigger=t, s_stop=s_stop, s_end=s_p + 2.4, waited=False)
                 elif k == "person" and leg.kind == "aisle" and room >= 11 and v > 0.3:
-                    s_c = s + min(8.5, room - 3.5)
+                    s_c = s + min(7.5, room - 3.5)
                     xc = float(leg.p0[0] + s_c * math.cos(leg.psi))
                     aisle = int(round(leg.p0[1] / PITCH))
                     world.gaps += [(aisle, xc, 1.4), (aisle + 1, xc, 1.4)]
@@ -306,9 +309,10 @@ def simulate(rng: np.random.Generator, duration_s: float, kinds: list[str]) -> M
                     y_start = yc + side * left * (AISLE_W / 2 + 0.6 * RACK_D)
                     y_end = yc - side * left * (AISLE_W / 2 + RACK_D + 0.5)
                     p = {"x": xc, "y0": y_start, "y1": y_end, "t0": t + 0.5, "speed": 0.6,
+                         "pause_at": abs(yc - y_start), "pause": 2.5,
                          "away": math.cos(leg.psi)}  # then walks off ahead of the rover, out of sight
                     world.persons.append(p)
-                    e.update(state="active", t_trigger=t, s_stop=s_c - 2.6, s_cross=s_c, person=p,
+                    e.update(state="active", t_trigger=t, s_stop=s_c - 2.0, s_cross=s_c, person=p,
                              clear_y=yc - side * left * (AISLE_W / 2 + 0.2), released=None)
                 elif k == "ramp" and leg.kind == "aisle" and room >= 1.1 * 11 + 2.5 and v > 0.5:
                     e.update(state="active", start_s=t, end_s=t + 11.0,
@@ -334,7 +338,7 @@ def simulate(rng: np.random.Generator, duration_s: float, kinds: list[str]) -> M
             if not active["waited"]:
                 stops.append(active["s_stop"])
             elif s < active["s_end"]:
-                target = min(target, 0.35)
+                target = min(target, 0.5)  # squeezing past slowly
             else:
                 active.update(state="done", t_passed=t)
                 active = None
@@ -490,9 +494,9 @@ def synth_imu(rng: np.random.Generator, motion: Motion, t_imu: np.ndarray) -> np
             # A rattle whose frequency wanders in 14-18 Hz, amplitude-modulated once per wheel turn.
             f_inst = 16.0 + 1.5 * np.sin(2 * np.pi * tf / 7.0 + float(rng.uniform(0, 2 * np.pi)))
             phase = np.interp(t_imu, tf, 2 * np.pi * np.cumsum(f_inst) / fs)
-            wheel_turn = np.interp(t_imu, tf, 2 * np.pi * np.cumsum(np.interp(tf, ts, wheel)) / fs / (2 * np.pi * 0.075))
+            wheel_angle = np.interp(t_imu, tf, np.cumsum(np.interp(tf, ts, wheel)) / fs / WHEEL_R)  # rad
             env = (_smoothstep((t_imu - e["start_s"]) / 0.6) - _smoothstep((t_imu - e["end_s"] + 0.6) / 0.6))
-            amp = env * np.clip(speed / 0.9, 0, 1.3) * (0.7 + 0.3 * np.cos(wheel_turn))
+            amp = env * np.clip(speed / 0.9, 0, 1.3) * (0.7 + 0.3 * np.cos(wheel_angle))
             for c, (gain, ph) in enumerate([(0.22, 0.7), (0.26, 1.9), (0.38, 0.0), (0.030, 2.4), (0.022, 0.3),
                                             (0.006, 1.1)]):
                 imu[:, c] += gain * amp * np.sin(phase + ph)
@@ -922,10 +926,9 @@ def event_intervals(motion: Motion, t_frames: np.ndarray, counts: dict, size: tu
                 continue
             start = float(t_frames[np.argmax(seen)])
             end = float(t_frames[len(seen) - 1 - np.argmax(seen[::-1])])
-            if k == "person":
-                start, end = min(start, e["t_trigger"]), max(end, e.get("released") or end)
-            else:
-                end = max(end, min(e["t_passed"], end + 2.0))
+            # joined with the rover's reaction: waiting for the person, or squeezing past the pallet
+            start = min(start, e["t_trigger"]) if k == "person" else start
+            end = max(end, (e.get("released") or end) if k == "person" else e["t_passed"])
             out.append((start, end, k))
         else:
             out.append((float(e["start_s"]), float(e["end_s"]), k))

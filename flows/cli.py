@@ -171,17 +171,23 @@ def cmd_evaluate(a) -> int:
         result = do_run(a.inbox, store, a.profile, "local", None, a.wait, progress=not a.json, report=False)
         from flows.evaluate import evaluate_store
 
-        ev = evaluate_store(store, result["run_id"], a.labels, plot=a.plot)
+        ev = evaluate_store(store, result["run_id"], a.labels, plot=a.plot, inbox=a.inbox, profile=a.profile,
+                            baselines=not a.no_baselines)
     except (InputError, StoreLockedError) as e:
         print(f"fleetsift: {e}", file=sys.stderr)
         return EXIT_ERROR
     if a.json:
         print(json.dumps(ev))
     else:
-        for m, v in ev["auc"].items():
-            se = ev.get("auc_se", {}).get(m)
-            print(f"{m:<10} ROC AUC {v:.3f}" + (f" +- {se:.3f}" if se is not None else ""))
-        print(f"windows {ev['n_windows']}, anomalous {ev['n_anomalous']}")
+        rows = [(m, v, ev["auc_se"].get(m)) for m, v in ev["auc"].items()]
+        rows += [(b.replace("_", " "), v, ev["baselines_se"].get(b)) for b, v in ev.get("baselines", {}).items()]
+        for name, v, se in rows:
+            auc = "n/a (one class only)" if v is None else f"{v:.3f}" + (f" +- {se:.3f}" if se is not None else "")
+            print(f"{name:<22} ROC AUC {auc}")
+        if ev.get("baselines_note"):
+            print(f"outlier baselines: {ev['baselines_note']}")
+        print(f"windows {ev['n_windows']}, anomalous {ev['n_anomalous']}" + (f"; ROC plot {ev['plot']}"
+                                                                             if ev.get("plot") else ""))
     return EXIT_OK
 
 
@@ -191,6 +197,32 @@ def cmd_report(a) -> int:
 
     path = write_report(a.store, a.run, a.out, as_of=a.as_of)
     print(path)
+    return EXIT_OK
+
+
+def cmd_sweep(a) -> int:
+    from fleetsift.errors import InputError, StoreLockedError
+
+    env.configure(a.store)
+    from flows.sweep import run_sweep
+
+    try:
+        out = run_sweep(a.inbox, a.store, a.labels, grid_path=a.grid, profile_path=a.profile, out_dir=a.out,
+                        wait_s=a.wait)
+    except (InputError, StoreLockedError) as e:
+        print(f"fleetsift: {e}", file=sys.stderr)
+        return EXIT_ERROR
+    if a.json:
+        print(json.dumps(out))
+        return EXIT_OK
+    print(f"{'point':>5} {'varied':<9} {'window_s':>8} {'hop_s':>6} {'k':>3} {'kind':<12} {'metric':<10} "
+          f"{'ridge':>7} {'AUC':>6} {'+-':>6}")
+    for r in out["points"]:
+        auc = "  -   " if r["auc"] is None else f"{r['auc']:.3f}"
+        se = "" if r["auc_se"] is None else f"{r['auc_se']:.3f}"
+        print(f"{r['point']:>5} {r['varied']:<9} {r['window_s']:>8g} {r['hop_s']:>6g} {r['k']:>3} {r['kind']:<12} "
+              f"{r['metric']:<10} {r['ridge']:>7g} {auc:>6} {se:>6}" + (f"  {r['error']}" if r["error"] else ""))
+    print(f"table {out['csv']}\nplot  {out['plot']}")
     return EXIT_OK
 
 
@@ -243,6 +275,8 @@ def build_parser() -> argparse.ArgumentParser:
     e.add_argument("--profile")
     e.add_argument("--store", help="store to use (default: a scratch folder)")
     e.add_argument("--plot", help="write ROC curves to this PNG")
+    e.add_argument("--no-baselines", action="store_true", dest="no_baselines",
+                   help="skip the IsolationForest / LocalOutlierFactor comparison")
     e.add_argument("--wait", type=float, default=0.0)
     e.add_argument("--json", action="store_true")
     e.set_defaults(fn=cmd_evaluate)
@@ -253,6 +287,17 @@ def build_parser() -> argparse.ArgumentParser:
     rp.add_argument("--as-of", type=int, dest="as_of", help="store version to read (time travel)")
     rp.add_argument("--out", required=True)
     rp.set_defaults(fn=cmd_report)
+
+    sw = sub.add_parser("sweep", help="ROC AUC against labels over a grid of window, hop, k, descriptor, metric")
+    sw.add_argument("--inbox", required=True)
+    sw.add_argument("--labels", required=True)
+    sw.add_argument("--store", required=True, help="store whose stage cache the sweep reuses (and fills)")
+    sw.add_argument("--grid", help="grid TOML (default: one parameter at a time around the profile, 12 points)")
+    sw.add_argument("--profile")
+    sw.add_argument("--out", help="folder for sweep.csv and sweep.png (default STORE/sweeps/<time>)")
+    sw.add_argument("--wait", type=float, default=0.0)
+    sw.add_argument("--json", action="store_true")
+    sw.set_defaults(fn=cmd_sweep)
 
     h = sub.add_parser("history", help="list the store's runs and versions")
     h.add_argument("--store", required=True)

@@ -16,12 +16,19 @@ from fleetsift.store import Store
 from tasks import stages
 
 
+def _is_store(p: Path) -> bool:
+    # A store inside the inbox has its cache folders (Store.init) before its first table exists, so the runs
+    # table alone would not reveal it on the first night.
+    return ((p / "_delta_log").exists() or (p / "runs" / "_delta_log").exists() or (p / ".lock").exists()
+            or ((p / "cache" / "tables").is_dir() and (p / "baselines").is_dir()))
+
+
 def discover(inbox: Path) -> list[Path]:
     """Every sub-folder of the inbox is a recording (hidden ones and the store, if inside, are skipped)."""
     if not inbox.is_dir():
         raise InputError(inbox, "inbox", "a folder of recording folders", "no such folder")
     return sorted(p for p in inbox.iterdir() if p.is_dir() and not p.name.startswith((".", "_"))
-                  and not (p / "_delta_log").exists() and not (p / "runs").exists())
+                  and not _is_store(p))
 
 
 def new_run_id() -> str:

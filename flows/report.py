@@ -1,96 +1,486 @@
-"""A self-contained HTML report of one run: fleet summary and a score timeline per recording."""
+"""A self-contained HTML report of one run: one file, every image embedded as a data URI, no script, no link out.
+
+Contents: the run and the safety note; the fleet at a glance (recordings, status, flagged windows and spans,
+highest scores, quarantine reasons); the top-N flagged windows, each with video thumbnails from the window, the
+table-stream traces around it and the channels that drive its deviation; and a score timeline per recording with
+the threshold and the flagged spans. Thumbnails and traces are read from the recording folders named in the store
+(`recordings.path`, else `runs.inbox`); a folder that is gone is noted, not an error.
+"""
 
 from __future__ import annotations
 
 import base64
 import html
 import io
+import re
 from pathlib import Path
 
 import numpy as np
 import pandas as pd
 
+from fleetsift import __version__
 from fleetsift.store import Store
 
-SAFETY_NOTE = ("These scores are a screening aid, not a certification. They point an engineer at recordings and "
-               "seconds worth a look; decisions to ground or release a vehicle follow the operator's procedures "
-               "and local rules.")
+SAFETY_NOTE = ("These scores are a screening aid, not a certification of airworthiness or roadworthiness. They "
+               "point an engineer at recordings and seconds worth a look; whether to ground, repair or release a "
+               "vehicle is decided by the operator's own procedures and the local rules, which this report does "
+               "not replace.")
+METRICS = ("riemann", "logeuclid", "euclid")
+TOP_N = 10
+THUMB_W = 176  # px; three JPEG thumbnails per window stay ~15 KB
+PLOT_DPI = 90
+ACCENT, INK, MUTED = "#b7472a", "#24425f", "#8aa1b4"
 
+
+# ------------------------------------------------------------------------------------------------ encoding
 
 def _png(fig) -> str:
-    buf = io.BytesIO()
-    fig.savefig(buf, format="png", dpi=80)
+    """A Matplotlib figure as a palette PNG data URI (64 colours keep line plots legible at a third the size)."""
     import matplotlib.pyplot as plt
+    from PIL import Image
 
+    buf = io.BytesIO()
+    fig.savefig(buf, format="png", dpi=PLOT_DPI)
     plt.close(fig)
-    return "data:image/png;base64," + base64.b64encode(buf.getvalue()).decode()
+    buf.seek(0)
+    img = Image.open(buf).convert("RGB").quantize(colors=64, method=Image.Quantize.MEDIANCUT)
+    out = io.BytesIO()
+    img.save(out, format="PNG", optimize=True)
+    return "data:image/png;base64," + base64.b64encode(out.getvalue()).decode()
 
 
-def _timeline(g: pd.DataFrame, threshold: float, title: str) -> str:
+def _jpeg(rgb: np.ndarray) -> str:
+    from PIL import Image
+
+    buf = io.BytesIO()
+    Image.fromarray(rgb).save(buf, format="JPEG", quality=72, optimize=True)
+    return "data:image/jpeg;base64," + base64.b64encode(buf.getvalue()).decode()
+
+
+def _mpl():
     import matplotlib
 
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
 
-    fig, ax = plt.subplots(figsize=(8, 1.9))
-    c = (g["t_start_s"] + g["t_end_s"]) / 2
-    ax.plot(c, g["score"], color="#2b6cb0", lw=1.2, marker=".", ms=3)
-    ax.axhline(threshold, color="#c05621", ls="--", lw=1, label="threshold")
-    for _, row in g[g["flagged"]].iterrows():
-        ax.axvspan(row["t_start_s"], row["t_end_s"], color="#f6ad55", alpha=0.25, lw=0)
-    ax.set_xlabel("seconds from the recording's first sample")
-    ax.set_ylabel("score")
-    ax.set_title(title, fontsize=9, loc="left")
-    ax.legend(loc="upper right", fontsize=7)
-    fig.tight_layout()
+    return plt
+
+
+def _e(x) -> str:
+    return html.escape(str(x), quote=True)
+
+
+def _anchor(rid: str) -> str:
+    return "rec-" + re.sub(r"[^A-Za-z0-9_-]", "_", rid)
+
+
+# ------------------------------------------------------------------------------------------ window logic
+
+def flagged_spans(g: pd.DataFrame) -> list[tuple[float, float]]:
+    """Union of the flagged windows' [t_start, t_end] (overlapping windows merge into one span)."""
+    f = g[g["flagged"]].sort_values("t_start_s")
+    spans: list[list[float]] = []
+    for s, e in zip(f["t_start_s"], f["t_end_s"]):
+        if spans and s <= spans[-1][1]:
+            spans[-1][1] = max(spans[-1][1], e)
+        else:
+            spans.append([float(s), float(e)])
+    return [(s, e) for s, e in spans]
+
+
+def pick_top(prim: pd.DataFrame, n: int) -> pd.DataFrame:
+    """The n highest-scoring flagged windows, skipping any that overlaps a window already picked in the same
+    recording, so overlapping windows of one event do not fill the list (non-maximum suppression, common
+    practice in detection)."""
+    cand = prim[prim["flagged"]].sort_values(["score", "recording_id", "window_index"],
+                                            ascending=[False, True, True])
+    picked: list = []
+    taken: dict[str, list[tuple[float, float]]] = {}
+    for r in cand.itertuples():
+        spans = taken.setdefault(r.recording_id, [])
+        if any(r.t_start_s < e and s < r.t_end_s for s, e in spans):
+            continue
+        spans.append((r.t_start_s, r.t_end_s))
+        picked.append(r.Index)
+        if len(picked) >= n:
+            break
+    return cand.loc[picked]
+
+
+def parse_channels(s: str) -> list[tuple[str, float]]:
+    """'ax:0.234,gz:0.120' -> [('ax', 0.234), ('gz', 0.12)]."""
+    out = []
+    for item in (s or "").split(","):
+        name, _, share = item.rpartition(":")
+        if name:
+            try:
+                out.append((name, float(share)))
+            except ValueError:
+                continue
+    return out
+
+
+# -------------------------------------------------------------------------------------- recording sources
+
+class RecordingSource:
+    """Lazy access to one recording folder's table streams and videos, on the common clock of the store."""
+
+    def __init__(self, rec_dir: Path, profile):
+        from featurizers import recording
+
+        self.dir = rec_dir
+        self.profile = profile
+        self.tables = [recording.read_table_stream(rec_dir, s) for s in profile.table_streams()]
+        # Times in the store are seconds from the earliest sample of any table stream (featurizers.recording).
+        self.t0 = min(float(tb.t[0]) for tb in self.tables)
+
+    def traces(self, t_from: float, t_to: float) -> list[tuple[str, np.ndarray, np.ndarray]]:
+        """(channel, t relative to the first sample, values) of every table channel inside [t_from, t_to]."""
+        out = []
+        for tb in self.tables:
+            rel = tb.t - self.t0
+            sel = (rel >= t_from) & (rel <= t_to)
+            for j, ch in enumerate(tb.channels):
+                out.append((ch, rel[sel], tb.values[sel, j]))
+        return out
+
+    def thumbnails(self, targets: list[float]) -> dict[str, list[np.ndarray | None]]:
+        """Per video stream, the frame nearest each target time (seconds from the first sample), decoded in one
+        sequential pass (seeking is slow with long keyframe intervals)."""
+        from featurizers import recording, video
+
+        out = {}
+        for s in self.profile.video_streams():
+            path = recording.resolve_stream_file(self.dir, s.file, s.name)
+            # Common clock -> the stream's own clock: the fleet step adds clock_offset_s and subtracts t0.
+            want = np.asarray(targets, float) + self.t0 - s.clock_offset_s
+            if s.topic:
+                from featurizers import logs
+
+                frames = logs.iter_bag_images(path, s.topic, 30.0, stamp=s.stamp)
+                size = None
+            else:
+                info = video.probe_video(path)
+                h = max(2, int(round(THUMB_W * info["height"] / max(info["width"], 1))))
+                size = (THUMB_W, h)
+                frames = video.iter_frames(path, None, size=size)
+            best_d = np.full(len(want), np.inf)
+            best: list[np.ndarray | None] = [None] * len(want)
+            last = want.max(initial=-np.inf) + 1.0
+            try:
+                for t, rgb in frames:
+                    d = np.abs(want - t)
+                    better = d < best_d
+                    for i in np.flatnonzero(better):
+                        best_d[i], best[i] = d[i], rgb
+                    if t > last:
+                        break
+            finally:
+                close = getattr(frames, "close", None)
+                if close:
+                    close()
+            if size is None:
+                from PIL import Image
+
+                best = [None if b is None else np.asarray(Image.fromarray(b).resize(
+                    (THUMB_W, max(2, int(THUMB_W * b.shape[0] / b.shape[1]))))) for b in best]
+            # A target more than a second from any frame lies outside the video: no thumbnail.
+            out[s.name] = [b if dd <= 1.0 else None for b, dd in zip(best, best_d)]
+        return out
+
+
+def _source(rec_path: str, fleet_profile):
+    """(RecordingSource or None, note)."""
+    from fleetsift.errors import InputError
+    from fleetsift.profile import profile_for
+
+    p = Path(rec_path) if rec_path else None
+    if p is None or not p.is_dir():
+        return None, f"recording folder {rec_path or '(unknown)'} is gone: no thumbnails or traces"
+    try:
+        return RecordingSource(p, profile_for(p, fleet_profile)), ""
+    except (InputError, OSError) as e:
+        return None, f"recording unreadable now ({e}): no thumbnails or traces"
+
+
+# ---------------------------------------------------------------------------------------------- figures
+
+def timeline_png(g: pd.DataFrame, threshold: float, marks: dict[int, int]) -> str:
+    """Score against time with the threshold, flagged spans shaded, invalid windows ticked, top windows numbered."""
+    plt = _mpl()
+    fig, ax = plt.subplots(figsize=(9.0, 2.1))
+    ok = g[g["score"].notna()]
+    c = (ok["t_start_s"] + ok["t_end_s"]) / 2
+    for s, e in flagged_spans(ok):
+        ax.axvspan(s, e, color=ACCENT, alpha=0.16, lw=0)
+    ax.plot(c, ok["score"], color=INK, lw=1.1, marker=".", ms=3, label="window score")
+    ax.axhline(threshold, color=ACCENT, ls="--", lw=1, label=f"threshold {threshold:.3g}")
+    bad = g[g["score"].isna()]
+    if len(bad):
+        y0 = float(ok["score"].min()) if len(ok) else 0.0
+        ax.plot((bad["t_start_s"] + bad["t_end_s"]) / 2, np.full(len(bad), y0), "|", color=MUTED, ms=8,
+                label="invalid (gap)")
+    by_idx = ok.set_index("window_index")
+    for widx, rank in marks.items():
+        if widx in by_idx.index:
+            r = by_idx.loc[widx]
+            ax.annotate(str(rank), ((r["t_start_s"] + r["t_end_s"]) / 2, r["score"]), xytext=(0, 5),
+                        textcoords="offset points", ha="center", fontsize=7, color=ACCENT, weight="bold")
+    ax.set_xlabel("seconds from the recording's first sample", fontsize=8)
+    ax.set_ylabel("score", fontsize=8)
+    ax.tick_params(labelsize=7)
+    ax.margins(x=0.01, y=0.18)
+    ax.legend(loc="lower right", bbox_to_anchor=(1.0, 1.0), fontsize=7, ncol=3, frameon=False, borderaxespad=0.1)
+    fig.tight_layout(pad=0.4)
     return _png(fig)
 
 
-def write_report(store: str, run_id: str | None, out: str, as_of: int | None = None) -> str:
+def traces_png(series: list[tuple[str, np.ndarray, np.ndarray]], t_start: float, t_end: float,
+               shares: dict[str, float], max_rows: int = 8) -> str:
+    """One small panel per table channel around the window; channels named among the drivers in the accent."""
+    plt = _mpl()
+    ranked = sorted(series, key=lambda s: -shares.get(s[0], 0.0))[:max_rows]
+    order = {name: i for i, (name, _, _) in enumerate(series)}
+    ranked.sort(key=lambda s: order[s[0]])  # keep the stream's own channel order
+    fig, axes = plt.subplots(len(ranked), 1, figsize=(6.0, 0.46 * len(ranked) + 0.5), sharex=True, squeeze=False)
+    for ax, (name, t, v) in zip(axes[:, 0], ranked):
+        hot = name in shares
+        ax.axvspan(t_start, t_end, color="#f3e3c3", lw=0)
+        ax.plot(t, v, lw=0.7, color=ACCENT if hot else INK)
+        label = f"{name} {shares[name]:.0%}" if hot else name
+        ax.set_ylabel(label, rotation=0, ha="right", va="center", fontsize=7, color=ACCENT if hot else "#333")
+        ax.tick_params(labelsize=6, length=2)
+        ax.locator_params(axis="y", nbins=2)
+        for side in ("top", "right"):
+            ax.spines[side].set_visible(False)
+    axes[-1, 0].set_xlabel("seconds from the recording's first sample (window shaded)", fontsize=7)
+    fig.tight_layout(pad=0.3, h_pad=0.1)
+    return _png(fig)
+
+
+# ------------------------------------------------------------------------------------------------ report
+
+CSS = """
+body{font:14px/1.45 system-ui,-apple-system,'Segoe UI',sans-serif;max-width:64em;margin:1.2em auto;padding:0 1em;
+color:#1c2530}
+h1{font-size:1.5em;margin:.2em 0}h2{font-size:1.15em;margin:1.6em 0 .5em;border-bottom:2px solid #d8e0e8}
+h3{font-size:1em;margin:.2em 0 .4em}
+.meta{color:#526170;font-size:.9em}.meta code{font-size:.95em}
+.safety{background:#fff7e6;border-left:5px solid #d08c2c;padding:.5em .8em;margin:.8em 0}
+.tiles{display:flex;gap:.6em;flex-wrap:wrap;margin:.6em 0}
+.tile{background:#f2f5f8;border-radius:6px;padding:.4em .9em;min-width:7em}
+.tile b{display:block;font-size:1.35em}
+table{border-collapse:collapse;width:100%;font-size:.9em}th,td{border-bottom:1px solid #dfe5eb;padding:3px 6px;
+text-align:left;vertical-align:top}th{background:#f2f5f8}td.n{text-align:right;font-variant-numeric:tabular-nums}
+tr.quarantined td{background:#fdf0ee}
+.card{border:1px solid #d8e0e8;border-radius:8px;padding:.6em .8em;margin:.8em 0;break-inside:avoid}
+.rank{display:inline-block;background:#b7472a;color:#fff;border-radius:4px;padding:0 .45em;margin-right:.4em}
+.row{display:flex;gap:1em;flex-wrap:wrap;align-items:flex-start}
+.thumbs{display:flex;gap:4px}.thumbs figure{margin:0;font-size:.75em;color:#526170;text-align:center}
+.drivers{min-width:15em}.bar{height:.7em;background:#b7472a;border-radius:2px;display:inline-block;
+vertical-align:middle;margin-right:.4em}
+.note{color:#7a5a2a;font-size:.85em}img{max-width:100%;display:block}
+"""
+
+
+def _fmt(x, spec=".3f") -> str:
+    return "-" if x is None or (isinstance(x, float) and np.isnan(x)) else format(x, spec)
+
+
+def _primary_metric(w: pd.DataFrame) -> str:
+    """The run's primary metric: the one whose rows carry the channel attribution."""
+    carrying = w.loc[w["top_channels"].fillna("") != "", "metric"].unique()
+    return str(carrying[0]) if len(carrying) else "riemann"
+
+
+def _fleet_profile(run, profile: str | None):
+    from fleetsift.errors import InputError
+    from fleetsift.profile import PROFILE_NAME, load_profile
+
+    path = Path(profile) if profile else (Path(str(run["inbox"])) / PROFILE_NAME if run["inbox"] else None)
+    if path is None or not path.exists():
+        return None, f"profile {path} not found"
+    try:
+        prof = load_profile(path)
+    except InputError as e:
+        return None, str(e)
+    note = ""
+    if run["profile_hash"] and prof.digest() != run["profile_hash"]:
+        note = (f"the profile {path} has changed since this run (hash {prof.digest()}, the run's "
+                f"{run['profile_hash']}): thumbnails and traces were read with the current one")
+    return prof, note
+
+
+def write_report(store: str, run_id: str | None, out: str, as_of: int | None = None, top_n: int = TOP_N,
+                 profile: str | None = None) -> str:
+    """Write the HTML report of ``run_id`` (default: the latest run at ``as_of``) to ``out``; returns the path.
+
+    ``as_of`` is a `runs` table version (time travel); ``profile`` overrides the inbox's profile.toml for reading
+    thumbnails and traces.
+    """
     st = Store(store)
     runs = st.read("runs", version=as_of)
     if runs.empty:
         raise ValueError(f"{store}: no runs in the store")
     if run_id is None:
         run_id = runs.sort_values("finished_at")["run_id"].iloc[-1]
-    run = runs[runs["run_id"] == run_id]
-    if run.empty:
+    sel = runs[runs["run_id"] == run_id]
+    if sel.empty:
         raise ValueError(f"{store}: no run {run_id!r}")
-    run = run.iloc[0]
-    recs = st.read("recordings", run_id=run_id)
+    run = sel.iloc[0]
+    recs = st.read("recordings", run_id=run_id).sort_values("recording_id")
     w = st.read("windows", run_id=run_id)
-    metric = "riemann"
-    prim = w[(w["metric"] == metric) & w["score"].notna()]
+    metric = _primary_metric(w)
+    prim = w[w["metric"] == metric]
+    valid = prim[prim["score"].notna()]
+    thresholds = {m: float(g["threshold"].iloc[0]) for m, g in w.groupby("metric") if len(g)}
+    fleet_prof, prof_note = _fleet_profile(run, profile)
 
-    parts = [f"<h1>fleetsift night summary</h1><p class='note'>{html.escape(SAFETY_NOTE)}</p>",
-             f"<p>Run <code>{html.escape(run_id)}</code>, finished {run['finished_at']}, baseline "
-             f"<code>{html.escape(str(run['baseline_id']))}</code>, metric <b>{metric}</b>.</p>"]
+    paths = {r.recording_id: (r.path or (str(Path(str(run["inbox"])) / r.recording_id) if run["inbox"] else ""))
+             for r in recs.itertuples()}
+    sources: dict[str, tuple] = {}
+
+    def source(rid):
+        if rid not in sources:
+            sources[rid] = _source(paths.get(rid, ""), fleet_prof) if fleet_prof is not None else \
+                (None, f"no profile to read the recording with ({prof_note})")
+        return sources[rid]
+
+    top = pick_top(valid, top_n)
+    rank_of = {(r.recording_id, r.window_index): i + 1 for i, r in enumerate(top.itertuples())}
+
+    # --- header and fleet summary
+    n_flag = int(valid["flagged"].sum())
+    n_q = int((recs["status"] == "quarantined").sum())
+    parts = [
+        "<h1>fleetsift screening report</h1>",
+        f"<p class='meta'>Run <code>{_e(run_id)}</code> &middot; finished {_e(run['finished_at'])} &middot; "
+        f"baseline <code>{_e(run['baseline_id'])}</code> &middot; primary metric <b>{_e(metric)}</b> &middot; "
+        f"profile <code>{_e(run['profile_hash'])}</code> &middot; fleetsift {_e(run['code_version'])}"
+        + (f" &middot; store version {as_of}" if as_of is not None else "") + "</p>",
+        f"<p class='safety'><b>Safety note.</b> {_e(SAFETY_NOTE)}</p>",
+        "<div class='tiles'>"
+        + "".join(f"<div class='tile'><b>{v}</b>{_e(k)}</div>" for k, v in (
+            ("recordings", len(recs)), ("scored", int((recs["status"] == "scored").sum())), ("quarantined", n_q),
+            ("windows scored", len(valid)), ("windows flagged", n_flag),
+            ("flagged spans", sum(len(flagged_spans(g)) for _, g in valid.groupby("recording_id")))))
+        + "</div>",
+        "<p class='meta'>Thresholds (median + c &times; 1.4826 MAD of the baseline's leave-one-out scores): "
+        + ", ".join(f"{_e(m)} {v:.4g}" for m, v in sorted(thresholds.items())) + "</p>",
+    ]
+    if prof_note:
+        parts.append(f"<p class='note'>{_e(prof_note)}</p>")
     rows = []
-    for _, r in recs.sort_values("recording_id").iterrows():
-        g = prim[prim["recording_id"] == r["recording_id"]]
-        top = f"{g['score'].max():.3f}" if len(g) else "-"
-        rows.append(f"<tr><td>{html.escape(r['recording_id'])}</td><td>{r['status']}</td><td>{len(g)}</td>"
-                    f"<td>{int(g['flagged'].sum()) if len(g) else 0}</td><td>{top}</td>"
-                    f"<td>{html.escape(r['reason'] or '')}</td></tr>")
-    parts.append("<h2>Fleet</h2><table><tr><th>recording</th><th>status</th><th>windows</th><th>flagged</th>"
-                 "<th>highest score</th><th>reason</th></tr>" + "".join(rows) + "</table>")
-    parts.append("<h2>Score timelines</h2>")
+    for r in recs.itertuples():
+        g = valid[valid["recording_id"] == r.recording_id]
+        gall = prim[prim["recording_id"] == r.recording_id]
+        if len(g):
+            best = g.loc[g["score"].idxmax()]
+            top_s = f"{best['score']:.3f} at {best['t_start_s']:.1f}&ndash;{best['t_end_s']:.1f} s"
+        else:
+            top_s = "-"
+        name = _e(r.recording_id)
+        link = f"<a href='#{_anchor(r.recording_id)}'>{name}</a>" if len(g) else name
+        rows.append(
+            f"<tr class='{_e(r.status)}' data-recording='{name}'><td>{link}</td><td>{_e(r.status)}</td>"
+            f"<td class='n'>{_fmt(r.duration_s, '.1f')}</td><td class='n'>{len(g)}</td>"
+            f"<td class='n'>{len(gall) - len(g)}</td><td class='n flagged'>{int(g['flagged'].sum())}</td>"
+            f"<td class='n'>{len(flagged_spans(g))}</td><td>{top_s}</td><td>{_e(r.reason or '')}</td></tr>")
+    parts.append("<h2>Recordings</h2><table id='fleet'><tr><th>recording</th><th>status</th><th>seconds</th>"
+                 "<th>windows</th><th>invalid</th><th>flagged</th><th>spans</th><th>highest score</th>"
+                 "<th>reason</th></tr>" + "".join(rows) + "</table>")
+    quar = recs[recs["status"] == "quarantined"]
+    if len(quar):
+        parts.append("<h2>Quarantined recordings</h2><p>Not scored; fix the input and the next run picks them up."
+                     "</p><ul>" + "".join(f"<li><b>{_e(r.recording_id)}</b>: {_e(r.reason)}</li>"
+                                          for r in quar.itertuples()) + "</ul>")
+
+    # --- windows worth a look
+    parts.append(f"<h2>Windows worth a look</h2><p>The {len(top)} highest-scoring flagged windows of the primary "
+                 "metric, one per event (a window overlapping a higher-ranked one of the same recording is left "
+                 "out; all flagged windows are shaded in the timelines below).</p>")
+    if not len(top):
+        parts.append("<p>No window crossed the threshold in this run.</p>")
+    thumbs_by_rec: dict[str, dict] = {}
+    for rid, g in top.groupby("recording_id"):
+        src, _ = source(rid)
+        if src is None or not src.profile.video_streams():
+            continue
+        targets = []
+        for r in g.itertuples():
+            span = r.t_end_s - r.t_start_s
+            targets += [r.t_start_s + 0.1 * span, (r.t_start_s + r.t_end_s) / 2, r.t_end_s - 0.1 * span]
+        try:
+            thumbs_by_rec[rid] = {"targets": g["window_index"].tolist(), "frames": src.thumbnails(targets)}
+        except Exception as e:  # a damaged video must not cost the report
+            thumbs_by_rec[rid] = {"error": f"video unreadable: {e}"}
+    for r in top.itertuples():
+        rank = rank_of[(r.recording_id, r.window_index)]
+        src, note = source(r.recording_id)
+        shares = dict(parse_channels(r.top_channels))
+        drivers = "".join(f"<div><span class='bar' style='width:{max(2, round(100 * v))}px'></span>"
+                          f"{_e(k)} <b>{v:.0%}</b></div>" for k, v in shares.items()) or "<div>-</div>"
+        media = []
+        tinfo = thumbs_by_rec.get(r.recording_id)
+        if tinfo and "error" in tinfo:
+            media.append(f"<p class='note'>{_e(tinfo['error'])}</p>")
+        elif tinfo:
+            j = tinfo["targets"].index(r.window_index)
+            for sname, frames in tinfo["frames"].items():
+                figs = []
+                for lab, img in zip(("start", "middle", "end"), frames[3 * j: 3 * j + 3]):
+                    if img is None:
+                        figs.append(f"<figure><p class='note'>no frame ({lab})</p></figure>")
+                    else:
+                        figs.append(f"<figure><img alt='{_e(sname)} {lab} of window {rank}' src='{_jpeg(img)}'>"
+                                    f"{_e(sname)}, {lab}</figure>")
+                media.append("<div class='thumbs'>" + "".join(figs) + "</div>")
+        elif src is not None and not src.profile.video_streams():
+            media.append("<p class='note'>no video stream in this recording</p>")
+        if src is not None:
+            span = r.t_end_s - r.t_start_s
+            series = src.traces(r.t_start_s - 0.5 * span, r.t_end_s + 0.5 * span)
+            media.append(f"<img alt='table traces of window {rank}' "
+                         f"src='{traces_png(series, r.t_start_s, r.t_end_s, shares)}'>")
+        else:
+            media.append(f"<p class='note'>{_e(note)}</p>")
+        ratio = r.score / r.threshold if r.threshold else float("nan")
+        parts.append(
+            f"<div class='card' id='window-{rank}' data-recording='{_e(r.recording_id)}'>"
+            f"<h3><span class='rank'>{rank}</span><a href='#{_anchor(r.recording_id)}'>{_e(r.recording_id)}</a>, "
+            f"{r.t_start_s:.1f}&ndash;{r.t_end_s:.1f} s &middot; score {r.score:.3f} "
+            f"({_fmt(ratio, '.2f')} &times; threshold)</h3><div class='row'>"
+            f"<div class='drivers'><b>Driving channels</b> (share of the deviation){drivers}</div>"
+            f"<div>{''.join(media)}</div></div></div>")
+
+    # --- timelines
+    parts.append("<h2>Score timelines</h2><p>One point per window at its centre; shaded: flagged spans; dashed: "
+                 "threshold; numbers: the windows above; ticks at the bottom: windows left unscored because they "
+                 "straddle a gap.</p>")
     for rid, g in prim.groupby("recording_id"):
         g = g.sort_values("window_index")
+        if not g["score"].notna().any():
+            continue
+        marks = {int(widx): rk for (rr, widx), rk in rank_of.items() if rr == rid}
         thr = float(g["threshold"].iloc[0])
-        parts.append(f"<img alt='score timeline {html.escape(rid)}' src='{_timeline(g, thr, rid)}'>")
-    top = prim[prim["flagged"]].sort_values("score", ascending=False).head(10)
-    if len(top):
-        items = "".join(
-            f"<tr><td>{html.escape(r.recording_id)}</td><td>{r.t_start_s:.1f}-{r.t_end_s:.1f} s</td>"
-            f"<td>{r.score:.3f}</td><td>{html.escape(r.top_channels)}</td></tr>" for r in top.itertuples())
-        parts.append("<h2>Most unusual windows</h2><table><tr><th>recording</th><th>window</th><th>score</th>"
-                     "<th>driving channels (share)</th></tr>" + items + "</table>")
-    css = ("body{font-family:sans-serif;max-width:60em;margin:1em auto;color:#1a202c}"
-           "table{border-collapse:collapse}td,th{border:1px solid #cbd5e0;padding:2px 6px;font-size:90%}"
-           ".note{background:#fffbea;border-left:4px solid #d69e2e;padding:6px}img{display:block;max-width:100%}")
-    doc = (f"<!doctype html><html><head><meta charset='utf-8'><title>fleetsift {html.escape(run_id)}</title>"
-           f"<style>{css}</style></head><body>{''.join(parts)}</body></html>")
+        parts.append(f"<h3 id='{_anchor(rid)}'>{_e(rid)}</h3><img alt='score timeline {_e(rid)}' "
+                     f"src='{timeline_png(g, thr, marks)}'>")
+
+    parts.append(
+        "<h2>How to read this report</h2><p>Each window of the common clock is described by an SPD matrix of its "
+        "standardised channels and scored by its distance on the SPD manifold to the k nearest windows of the "
+        "fleet's baseline of normal operation (never counting neighbours from its own recording within the "
+        "exclusion zone). A window is flagged when its score exceeds the threshold taken from the baseline's own "
+        "scores. The driving channels split the window's deviation from the baseline's mean by channel (the "
+        "energy of each channel's rows of the whitened log map). A high score says <i>unlike the baseline</i>, "
+        "not <i>faulty</i>.</p>"
+        f"<p class='meta'>Written by fleetsift {_e(__version__)} from the store {_e(st.root)}.</p>")
+    doc = ("<!doctype html><html lang='en'><head><meta charset='utf-8'>"
+           "<meta name='viewport' content='width=device-width,initial-scale=1'>"
+           f"<title>fleetsift report {_e(run_id)}</title><style>{CSS}</style></head><body>{''.join(parts)}"
+           "</body></html>")
     Path(out).parent.mkdir(parents=True, exist_ok=True)
-    Path(out).write_text(doc, encoding="utf-8")
+    tmp = Path(out).with_suffix(".html.tmp")
+    tmp.write_text(doc, encoding="utf-8")
+    tmp.replace(out)
     return str(out)

@@ -12,6 +12,10 @@ from pathlib import Path
 
 
 def serve(inbox: str, store: str, cron: str, profile: str | None = None, name: str = "nightly") -> int:
+    """Register deployment 'fleetsift-scheduled/NAME' on the cron schedule and run its flow runs until Ctrl-C.
+
+    Returns the exit code: 0 after Ctrl-C, 2 when no Prefect server is configured.
+    """
     if not os.environ.get("PREFECT_API_URL"):
         print("fleetsift serve: PREFECT_API_URL is not set. Scheduling needs a Prefect server: start one with "
               "`scripts/prefect-server.sh STORE` (local, state in the store) and export "
@@ -19,7 +23,12 @@ def serve(inbox: str, store: str, cron: str, profile: str | None = None, name: s
         return 2
     from flows.nightly import scheduled_run
 
-    params = {"inbox": str(Path(inbox).resolve()), "store": str(Path(store).resolve()), "profile_path": profile}
+    # Absolute paths: the deployment's runs may start in another working directory than this command.
+    params = {"inbox": str(Path(inbox).resolve()), "store": str(Path(store).resolve()),
+              "profile_path": str(Path(profile).resolve()) if profile else None}
     print(f"serving deployment 'fleetsift-scheduled/{name}' on cron {cron!r}; Ctrl-C stops", file=sys.stderr)
-    scheduled_run.serve(name=name, cron=cron, parameters=params)
+    try:
+        scheduled_run.serve(name=name, cron=cron, parameters=params)
+    except KeyboardInterrupt:  # Ctrl-C is the way to stop serving, also while the deployment is being registered
+        print("fleetsift serve: stopped", file=sys.stderr)
     return 0

@@ -223,6 +223,29 @@ def run_score(prepared: list[dict], profile: Profile, store_root: str, run_id: s
     return {"path": str(out), "reused": False, **meta}
 
 
+def run_descriptors(prepared: list[dict], profile: Profile, store_root: str, score: dict) -> str:
+    """Save the window descriptors of a score run next to its parquet, as ``<score>.descriptors.npz`` with
+    ``descriptors (n, d, d)``, ``recording_id (n,)`` and ``window_index (n,)`` (valid windows only).
+
+    They are recomputed from the cached stage outputs with the run's stored baseline (standardisation and PCA),
+    which is exactly how the fleet step described them; evaluation uses them for vector-space baselines.
+    """
+    from featurizers.evaluation import window_descriptors
+
+    out = Path(score["path"]).with_suffix(".descriptors.npz")
+    if out.exists():
+        return str(out)
+    store = Store(store_root)
+    b = Store.load_arrays(store.root / "baselines" / f"{score['baseline_id']}.npz")
+    pca = {s.name: {k: b[f"pca.{s.name}.{k}"] for k in ("mean", "components")} for s in profile.video_streams()}
+    gaps = {s.name: fleet.video_gap_s(s.sample_hz, profile.windowing.max_gap_s) for s in profile.video_streams()}
+    recs = [load_features(profile, p["tables"], p["embed"]) for p in prepared]
+    D, rids, idx = window_descriptors(recs, center=b["center"], scale=b["scale"], pca=pca, video_gaps=gaps,
+                                      windowing=profile.windowing, descriptor=profile.descriptor)
+    store.save_arrays(out, descriptors=D, recording_id=rids, window_index=idx)
+    return str(out)
+
+
 def run_write(store_root: str, run_id: str, started_at: float, profile: Profile, code_ver: str,
               rec_rows: list[dict], score: dict | None, inbox: str = "") -> dict:
     """Append the run to the Delta tables: recordings, then windows, then runs (the run's commit marker)."""

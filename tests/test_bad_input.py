@@ -527,8 +527,6 @@ def test_truncated_video_yields_the_frames_before_the_cut(videos, caplog):
     assert any("truncated.mp4" in r.getMessage() and "ends early" in r.getMessage() for r in caplog.records)
 
 
-@pytest.mark.xfail(strict=True, reason="featurizers/video.py decodes the packet cut by the truncation (PyAV flags "
-                   "it packet.is_corrupt) into a damaged frame; skipping corrupt packets fixes it")
 def test_truncated_video_yields_no_damaged_frame(videos):
     full = list(video.iter_frames(videos["good"]))
     part = list(video.iter_frames(videos["truncated"]))

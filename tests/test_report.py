@@ -1,0 +1,316 @@
+"""The HTML report: content matches the store, thumbnails come from the right frames, every image is embedded and
+renders in headless Chromium; (slow) the report a real `fleetsift run` writes."""
+
+import base64
+import io
+import json
+import os
+import shutil
+import subprocess
+import sys
+from html.parser import HTMLParser
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from flows.report import SAFETY_NOTE, flagged_spans, pick_top, write_report
+
+ROOT = Path(__file__).resolve().parent.parent
+CHROMIUM = "/usr/bin/chromium"
+MAX_BYTES = 1_500_000
+
+PROFILE = """
+[windowing]
+rate_hz = 50.0
+window_s = 2.0
+hop_s = 1.0
+[streams.imu]
+kind = "table"
+file = "imu.csv"
+channels = ["ax", "ay", "az", "gx", "gy", "gz"]
+[streams.camera]
+kind = "video"
+file = "camera.mp4"
+clock_offset_s = -0.5
+"""
+T0 = 0.3  # first IMU sample: window times are seconds from here
+FPS = 4
+N_FRAMES = 48  # 12 s
+
+
+def level(i):
+    """Grey level of synthetic frame i, so a thumbnail says which frame it came from."""
+    return 10 + 5 * i
+
+
+class Doc(HTMLParser):
+    """The parts of the report the tests read: fleet table rows, cards, images (with the card they sit in)."""
+
+    def __init__(self):
+        super().__init__()
+        self.rows, self.cards, self.imgs, self.text = [], [], [], []
+        self._in_fleet = self._cell = False
+        self._card = None
+        self._depth = 0
+
+    def handle_starttag(self, tag, attrs):
+        a = dict(attrs)
+        if tag == "table" and a.get("id") == "fleet":
+            self._in_fleet = True
+        if self._in_fleet and tag == "tr":
+            self.rows.append([])
+        if self._in_fleet and tag == "td":
+            self._cell = True
+            self.rows[-1].append("")
+        if tag == "div":
+            if "card" in (a.get("class") or "").split():
+                self._card = {"id": a.get("id"), "recording": a.get("data-recording"), "imgs": [], "text": ""}
+                self.cards.append(self._card)
+                self._depth = 0
+            if self._card is not None:
+                self._depth += 1
+        if tag == "img":
+            self.imgs.append(a)
+            if self._card is not None:
+                self._card["imgs"].append(a)
+
+    def handle_endtag(self, tag):
+        if tag == "table":
+            self._in_fleet = False
+        if tag == "td":
+            self._cell = False
+        if tag == "div" and self._card is not None:
+            self._depth -= 1
+            if self._depth == 0:
+                self._card = None
+
+    def handle_data(self, data):
+        self.text.append(data)
+        if self._cell:
+            self.rows[-1][-1] += data
+        if self._card is not None:
+            self._card["text"] += data
+
+
+def parse(path) -> Doc:
+    d = Doc()
+    d.feed(Path(path).read_text(encoding="utf-8"))
+    return d
+
+
+def decode(src: str):
+    from PIL import Image
+
+    head, _, data = src.partition(",")
+    assert head in ("data:image/png;base64", "data:image/jpeg;base64"), head[:40]
+    im = Image.open(io.BytesIO(base64.b64decode(data)))
+    im.load()
+    return im
+
+
+# ------------------------------------------------------------------------------------------- a small store
+
+@pytest.fixture(scope="module")
+def store_run(tmp_path_factory):
+    """A store with one run written through Store.append, and recording folders with real IMU and video files."""
+    from featurizers.video import write_video
+    from fleetsift.profile import load_profile
+    from fleetsift.store import Store
+
+    base = tmp_path_factory.mktemp("report")
+    inbox = base / "inbox"
+    inbox.mkdir()
+    (inbox / "profile.toml").write_text(PROFILE)
+    rng = np.random.default_rng(0)
+    for name in ("rover-a", "rover-b"):
+        rec = inbox / name
+        rec.mkdir()
+        t = T0 + np.arange(1200) / 100.0
+        x = rng.normal(size=(1200, 6)) * 0.1 + [0, 0, 9.81, 0, 0, 0]
+        pd.DataFrame({"t": t, **{c: x[:, j] for j, c in enumerate(["ax", "ay", "az", "gx", "gy", "gz"])}}).to_csv(
+            rec / "imu.csv", index=False)
+        frames = (np.full((120, 160, 3), level(i), np.uint8) for i in range(N_FRAMES))
+        # Lossless H.264: only the YUV 4:2:0 round trip remains (measured within 2 grey levels of 5 apart).
+        write_video(rec / "camera.mp4", frames, fps=FPS, codec="libx264", options={"qp": "0", "preset": "ultrafast"})
+    st = Store(base / "store").init()
+    run_id = "20260101T020000Z-abc123"
+    now = pd.Timestamp("2026-01-01 02:00:00", tz="UTC")
+    recs = pd.DataFrame({
+        "run_id": run_id, "recording_id": ["rover-a", "rover-b", "rover-c"], "content_hash": ["h1", "h2", ""],
+        "duration_s": [11.99, 11.99, None], "status": ["scored", "scored", "quarantined"],
+        "reason": ["", "", "rover-c/imu.csv: column 'ax': expected numbers, got text"],
+        "path": [str(inbox / "rover-a"), str(inbox / "rover-b"), str(inbox / "rover-c")]})
+    st.append("recordings", recs)
+    scores = {"rover-a": [1.0, 1.2, 5.0, 4.0, 1.1, np.nan, 0.9, 3.0, 1.0],
+              "rover-b": [1.1, 0.8, 1.0, 1.3, 4.5, 1.2, 1.0, 0.9, 1.1]}
+    rows = []
+    for rid, s in scores.items():
+        s = np.asarray(s)
+        for m, f in (("riemann", 1.0), ("logeuclid", 1.5), ("euclid", 0.5)):
+            thr = 2.0 * f
+            rows.append(pd.DataFrame({
+                "run_id": run_id, "recording_id": rid, "window_index": np.arange(9), "t_start_s": np.arange(9.0),
+                "t_end_s": np.arange(9.0) + 2.0, "metric": m, "score": s * f, "threshold": thr,
+                "flagged": np.nan_to_num(s * f) > thr,
+                "top_channels": ["" if (m != "riemann" or np.isnan(v)) else "ax:0.600,camera.pc1:0.250,gz:0.150"
+                                 for v in s],
+                "baseline_id": "b-test"}))
+    w = pd.concat(rows, ignore_index=True)
+    st.append("windows", w)
+    st.append("runs", pd.DataFrame([{
+        "run_id": run_id, "started_at": now, "finished_at": now, "code_version": "0.1.0",
+        "profile_hash": load_profile(inbox / "profile.toml").digest(), "baseline_id": "b-test", "n_recordings": 3,
+        "n_scored": 2, "n_quarantined": 1, "n_windows": 17, "n_flagged": 4, "status": "partial",
+        "inbox": str(inbox)}]))
+    # rover-b's folder is gone by the time the report is written: its card must say so, not fail.
+    shutil.rmtree(inbox / "rover-b")
+    out = base / "report.html"
+    write_report(str(st.root), None, str(out))
+    return st, run_id, w, out
+
+
+def test_report_matches_store(store_run):
+    st, run_id, w, out = store_run
+    doc = parse(out)
+    text = " ".join(doc.text)
+    assert SAFETY_NOTE in text and run_id in text
+    prim = w[w["metric"] == "riemann"]
+    body = [r for r in doc.rows if r]
+    by_name = {r[0]: r for r in body}
+    assert sorted(by_name) == ["rover-a", "rover-b", "rover-c"]
+    for rid, g in prim.groupby("recording_id"):
+        row = by_name[rid]
+        assert row[1] == "scored"
+        assert int(row[3]) == g["score"].notna().sum() and int(row[4]) == g["score"].isna().sum()
+        assert int(row[5]) == int(g["flagged"].sum())
+        assert int(row[6]) == len(flagged_spans(g[g["score"].notna()]))
+        assert row[7].startswith(f"{g['score'].max():.3f}")
+    assert by_name["rover-c"][1] == "quarantined" and "expected numbers, got text" in by_name["rover-c"][8]
+    assert "expected numbers, got text" in text.split("Quarantined recordings")[1]
+
+
+def test_top_windows_one_per_event(store_run):
+    st, run_id, w, out = store_run
+    prim = w[(w["metric"] == "riemann") & w["score"].notna()]
+    top = pick_top(prim, 10)
+    # rover-a's window 3 (3-5 s) overlaps the higher-scoring window 2 (2-4 s) and is left out.
+    assert list(zip(top["recording_id"], top["window_index"])) == [("rover-a", 2), ("rover-b", 4), ("rover-a", 7)]
+    doc = parse(out)
+    assert [(c["id"], c["recording"]) for c in doc.cards] == [("window-1", "rover-a"), ("window-2", "rover-b"),
+                                                              ("window-3", "rover-a")]
+    for c in doc.cards:
+        assert "ax 60%" in c["text"] and "camera.pc1 25%" in c["text"]
+    assert "is gone" in doc.cards[1]["text"] and not doc.cards[1]["imgs"]
+
+
+@pytest.mark.parametrize("card,t_start", [(0, 2.0), (2, 7.0)])
+def test_thumbnails_come_from_the_window(store_run, card, t_start):
+    st, run_id, w, out = store_run
+    c = parse(out).cards[card]
+    jpegs = [i for i in c["imgs"] if i["src"].startswith("data:image/jpeg")]
+    assert len(jpegs) == 3
+    for img, frac in zip(jpegs, (0.1, 0.5, 0.9)):
+        t_rel = t_start + 2.0 * frac
+        # Common clock -> video pts: + first IMU sample - camera clock offset (-0.5 s); frames every 1/FPS s.
+        frame = round((t_rel + T0 + 0.5) * FPS)
+        im = np.asarray(decode(img["src"]).convert("L"), float)
+        assert im.shape[1] == 176
+        assert abs(im.mean() - level(frame)) < 2.5, (img["alt"], im.mean(), level(frame))
+    traces = [i for i in c["imgs"] if i["src"].startswith("data:image/png")]
+    assert len(traces) == 1 and decode(traces[0]["src"]).size[1] > 150
+
+
+def test_every_image_embedded_and_small(store_run):
+    st, run_id, w, out = store_run
+    doc = parse(out)
+    assert {i["alt"] for i in doc.imgs} >= {"score timeline rover-a", "score timeline rover-b"}
+    for i in doc.imgs:
+        decode(i["src"])
+    html = out.read_text()
+    assert "http://" not in html and "https://" not in html and "<script" not in html
+    assert out.stat().st_size < MAX_BYTES
+
+
+def _chromium(args, tmp_path, timeout=120):
+    cmd = [CHROMIUM, "--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
+           "--disable-background-networking", "--disable-component-update", "--disable-sync", "--hide-scrollbars",
+           f"--user-data-dir={tmp_path / 'chromium-profile'}", *args]
+    return subprocess.run(cmd, capture_output=True, text=True, timeout=timeout)
+
+
+# Counts images that failed to decode once the page has loaded; --dump-dom prints the DOM after the load event.
+PROBE = ("<script>window.addEventListener('load',function(){var im=document.images,b=0;for(var i=0;i<im.length;"
+         "i++){if(!im[i].complete||im[i].naturalWidth===0)b++;}document.body.setAttribute('data-images',im.length);"
+         "document.body.setAttribute('data-broken',b);});</script>")
+
+
+def check_renders(report: Path, tmp_path: Path, shot: Path) -> None:
+    if not Path(CHROMIUM).exists():
+        pytest.skip(f"{CHROMIUM} not installed (Debian package 'chromium'): cannot check the report renders")
+    probe = tmp_path / "probe.html"
+    probe.write_text(report.read_text(encoding="utf-8").replace("</body>", PROBE + "</body>"), encoding="utf-8")
+    p = _chromium(["--dump-dom", probe.as_uri()], tmp_path)
+    assert p.returncode == 0, p.stderr[-2000:]
+    n = len(parse(report).imgs)
+    assert f'data-images="{n}"' in p.stdout and 'data-broken="0"' in p.stdout, p.stdout[-500:]
+    dom = Doc()
+    dom.feed(p.stdout)
+    assert len(dom.imgs) == n and all(i["src"].startswith("data:image/") for i in dom.imgs)
+    p = _chromium([f"--screenshot={shot}", "--window-size=1200,3000", report.as_uri()], tmp_path)
+    assert p.returncode == 0, p.stderr[-2000:]
+    from PIL import Image
+
+    with Image.open(shot) as im:
+        assert im.size == (1200, 3000)
+        px = np.asarray(im.convert("L"), float)
+    assert px.std() > 10  # not a blank page
+
+
+def test_report_renders_in_chromium(store_run, tmp_path):
+    st, run_id, w, out = store_run
+    check_renders(out, tmp_path, tmp_path / "report.png")
+
+
+def test_report_errors(tmp_path):
+    from fleetsift.store import Store
+
+    st = Store(tmp_path / "empty").init()
+    with pytest.raises(ValueError, match="no runs"):
+        write_report(str(st.root), None, str(tmp_path / "r.html"))
+
+
+# ------------------------------------------------------------------------------- slow: a real nightly run
+
+@pytest.mark.slow
+@pytest.mark.timeout(1500)
+def test_report_of_a_real_run(tmp_path):
+    from fleetsift import demo_fleet
+    from fleetsift.store import Store
+
+    inbox, store = tmp_path / "inbox", tmp_path / "store"
+    demo_fleet.make_fleet(inbox, n_recordings=3, duration_s=20.0, seed=5)
+    env = dict(os.environ, PREFECT_SERVER_ANALYTICS_ENABLED="false")
+    for k in ("PREFECT_HOME", "PREFECT_API_URL", "PREFECT_API_DATABASE_CONNECTION_URL"):
+        env.pop(k, None)
+    p = subprocess.run([sys.executable, "-m", "flows.cli", "run", "--inbox", str(inbox), "--store", str(store),
+                        "--json"], capture_output=True, text=True, env=env, cwd=ROOT, timeout=1200)
+    assert p.returncode in (0, 3), p.stderr
+    summary = json.loads(p.stdout)
+    report = Path(summary["report"])
+    doc = parse(report)
+    by_name = {r[0]: r for r in doc.rows if r}
+    assert sorted(by_name) == sorted(r["recording_id"] for r in summary["recordings"])
+    for r in summary["recordings"]:
+        assert by_name[r["recording_id"]][1] == r["status"]
+        assert int(by_name[r["recording_id"]][5]) == r["n_flagged"]
+    w = Store(store).read("windows", run_id=summary["run_id"])
+    prim = w[(w["metric"] == summary["metric"]) & w["score"].notna()]
+    assert len(doc.cards) == len(pick_top(prim, 10))
+    for c in doc.cards:  # the demo rovers have a camera and an IMU: three thumbnails and one trace plot each
+        kinds = [i["src"][:15] for i in c["imgs"]]
+        assert kinds.count("data:image/jpeg") == 3 and kinds.count("data:image/png;") == 1
+    print(f"report {report.stat().st_size} bytes for {len(by_name)} recordings, {len(doc.cards)} windows")
+    assert report.stat().st_size < MAX_BYTES
+    check_renders(report, tmp_path, tmp_path / "real.png")
