@@ -947,12 +947,12 @@ max_gap_s = 0.25      # a window straddling a gap in any stream longer than this
 kind = "ledoit_wolf"  # ledoit_wolf | oas | rbf | lagged
 include_mean = true   # Gaussian embedding of window mean + covariance into SPD(c+1) (Calvo & Oller 1990)
 lags = 3              # lagged only
-ridge = 1e-6
+ridge = 0.3            # noise floor added to every descriptor, in standardised units
 
 [scoring]
 metric = "riemann"    # primary metric: riemann | logeuclid | euclid
 method = "knn"        # knn | mean
-k = 5
+k = 3                 # neighbours
 knn_stat = "kth"      # kth | mean
 exclusion_s = 30.0    # same-recording neighbours within this many seconds never count
 trim_fraction = 0.1   # robust baseline: drop this share of highest-scoring windows and refit

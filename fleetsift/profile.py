@@ -77,14 +77,16 @@ class Descriptor:
     kind: str = "ledoit_wolf"
     include_mean: bool = True
     lags: int = 3
-    ridge: float = 1e-6
+    # A noise floor in standardised units: without it near-constant channels (a rover standing still) own the
+    # smallest eigenvalues, which dominate the affine-invariant distance. Chosen on the demo fleet.
+    ridge: float = 0.3
 
 
 @dataclass(frozen=True)
 class Scoring:
     metric: str = "riemann"
     method: str = "knn"
-    k: int = 5
+    k: int = 3
     knn_stat: str = "kth"
     exclusion_s: float = 30.0
     trim_fraction: float = 0.1

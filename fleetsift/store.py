@@ -278,10 +278,11 @@ class Store:
         """One row per run with the `runs` table version that committed it (for --as-of)."""
         from deltalake import DeltaTable
 
+        cols = ["version", "run_id", "finished_at", "n_recordings", "n_windows", "n_flagged", "n_quarantined",
+                "status", "baseline_id"]
         path = self.table_path("runs")
         if not (path / "_delta_log").exists():
-            return pd.DataFrame(columns=["version", "run_id", "finished_at", "n_recordings", "n_windows",
-                                         "n_flagged", "n_quarantined", "status"])
+            return pd.DataFrame(columns=cols)
         seen: set[str] = set()
         rows = []
         for v in range(DeltaTable(str(path)).version() + 1):
@@ -293,9 +294,7 @@ class Store:
                 if r["run_id"] not in seen:
                     seen.add(r["run_id"])
                     rows.append({"version": v, **r})
-        cols = ["version", "run_id", "finished_at", "n_recordings", "n_windows", "n_flagged", "n_quarantined",
-                "status", "baseline_id"]
-        return pd.DataFrame(rows)[cols]
+        return pd.DataFrame(rows, columns=cols)
 
     def maintain(self, retention_hours: float = 168.0) -> dict[str, dict]:
         """Compact small files and vacuum files older than the retention; time travel inside it keeps working.

@@ -171,7 +171,8 @@ def cmd_evaluate(a) -> int:
         result = do_run(a.inbox, store, a.profile, "local", None, a.wait, progress=not a.json, report=False)
         from flows.evaluate import evaluate_store
 
-        ev = evaluate_store(store, result["run_id"], a.labels, plot=a.plot, inbox=a.inbox, profile=a.profile,
+        plot = a.plot or str(Path(store) / "reports" / f"{result['run_id']}-roc.png")
+        ev = evaluate_store(store, result["run_id"], a.labels, plot=plot, inbox=a.inbox, profile=a.profile,
                             baselines=not a.no_baselines)
     except (InputError, StoreLockedError) as e:
         print(f"fleetsift: {e}", file=sys.stderr)
@@ -195,7 +196,7 @@ def cmd_report(a) -> int:
     env.configure(a.store)
     from flows.report import write_report
 
-    path = write_report(a.store, a.run, a.out, as_of=a.as_of)
+    path = write_report(a.store, a.run, a.out, as_of=a.as_of, top_n=a.top, profile=a.profile)
     print(path)
     return EXIT_OK
 
@@ -274,7 +275,7 @@ def build_parser() -> argparse.ArgumentParser:
     e.add_argument("--labels", required=True)
     e.add_argument("--profile")
     e.add_argument("--store", help="store to use (default: a scratch folder)")
-    e.add_argument("--plot", help="write ROC curves to this PNG")
+    e.add_argument("--plot", help="write ROC curves to this PNG (default STORE/reports/RUN-roc.png)")
     e.add_argument("--no-baselines", action="store_true", dest="no_baselines",
                    help="skip the IsolationForest / LocalOutlierFactor comparison")
     e.add_argument("--wait", type=float, default=0.0)
@@ -286,6 +287,8 @@ def build_parser() -> argparse.ArgumentParser:
     rp.add_argument("--run")
     rp.add_argument("--as-of", type=int, dest="as_of", help="store version to read (time travel)")
     rp.add_argument("--out", required=True)
+    rp.add_argument("--top", type=int, default=10, help="flagged windows shown with thumbnails and traces")
+    rp.add_argument("--profile", help="profile to read the recordings with (default: the inbox's profile.toml)")
     rp.set_defaults(fn=cmd_report)
 
     sw = sub.add_parser("sweep", help="ROC AUC against labels over a grid of window, hop, k, descriptor, metric")
