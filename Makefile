@@ -16,6 +16,9 @@ $(VENV)/.installed: pyproject.toml | $(PY)
 
 $(VENV)/.installed-test: $(VENV)/.installed
 	$(PIP) install -e '.[test]' 2>&1 | grep -v "is ignored: it is neither" || true
+	# sktime's wheel ships UEA BasicMotions for tests/test_opendata.py, which reads its data files only; without
+	# --no-deps its pandas<3.1 pin would downgrade pandas.
+	$(PIP) install --no-deps sktime==1.2.0 2>&1 | grep -v "is ignored: it is neither" || true
 	$(PY) -c "import pytest, hypothesis, pyriemann, skimage"
 	touch $@
 

@@ -563,3 +563,26 @@ def test_recording_to_bag_round_trip(demo_recording, tmp_path, storage):
         assert abs(tg - tw) <= 1e-9
         mse = np.mean((im.astype(np.float64) - ref.astype(np.float64)) ** 2)
         assert 10 * np.log10(255.0**2 / mse) > 30.0  # JPEG q90 of a decoded frame, smooth content (common practice)
+
+
+def test_ulog_recording_through_the_table_stage(ulog_case, tmp_path):
+    # A recording folder holding one ULog file: the table stage reads the topic, and the common clock holds the
+    # log's samples (outside reference: numpy.interp on the arrays the file was written from).
+    import shutil
+
+    from fleetsift.profile import parse_profile
+    from tasks import stages
+
+    rec = tmp_path / "inbox" / "flight-01"
+    rec.mkdir(parents=True)
+    shutil.copy(ulog_case["path"], rec / "flight.ulg")
+    prof = parse_profile('[windowing]\nrate_hz = 200.0\n[streams.accel]\nkind = "table"\nfile = "*.ulg"\n'
+                         'topic = "sensor_accel"\nchannels = ["accelerometer_m_s2"]\n')
+    out = stages.run_tables(str(rec), prof, str(tmp_path / "store"))
+    assert out["status"] == "ok", out
+    arr = stages.Store.load_arrays(out["path"])
+    assert out["channels"] == ["accelerometer_m_s2[0]", "accelerometer_m_s2[1]", "accelerometer_m_s2[2]"]
+    t_src = ulog_case["t0"].astype(float) / 1e6
+    t_abs = arr["t"] + out["t0"]
+    for j in range(3):
+        np.testing.assert_allclose(arr["values"][:, j], np.interp(t_abs, t_src, ulog_case["acc0"][:, j]), atol=1e-5)
