@@ -89,10 +89,18 @@ def do_run(inbox: str, store: str, profile: str | None, runner: str, dask_addres
 
     st = Store(store).init()
     with st.lock(wait_s=wait_s):
+        # Rows of a run killed between its appends belong to no completed run: drop them before writing again.
+        removed = st.remove_orphans()
+        if any(removed.values()):
+            print(f"removed rows of unfinished runs: {removed}", file=sys.stderr)
         fl = nightly_flow
         parallel = False
         if runner == "dask":
+            import logging
+
             from prefect_dask import DaskTaskRunner
+
+            logging.getLogger("distributed").setLevel(logging.WARNING)  # dozens of INFO lines per run otherwise
 
             kwargs = {"address": dask_address} if dask_address else {
                 "cluster_kwargs": {"n_workers": 2, "threads_per_worker": 1, "processes": True,

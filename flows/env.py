@@ -21,12 +21,10 @@ def configure(store_root: str | Path) -> None:
         "MPLCONFIGDIR": str(root / ".mpl"),
         "DASK_TEMPORARY_DIRECTORY": str(root / ".dask"),
     }
+    # Prefect's home (profiles, local result storage) always lives in the store, never in ~/.prefect.
+    defaults.update({"PREFECT_HOME": str(home), "PREFECT_LOCAL_STORAGE_PATH": str(home / "storage")})
     if not os.environ.get("PREFECT_API_URL"):
-        # No team server: the embedded temporary server keeps its SQLite database in the store, not in ~/.prefect.
-        defaults.update({
-            "PREFECT_HOME": str(home),
-            "PREFECT_API_DATABASE_CONNECTION_URL": f"sqlite+aiosqlite:///{home / 'prefect.db'}",
-            "PREFECT_LOCAL_STORAGE_PATH": str(home / "storage"),
-        })
+        # No team server: the embedded temporary server keeps its SQLite database in the store too.
+        defaults["PREFECT_API_DATABASE_CONNECTION_URL"] = f"sqlite+aiosqlite:///{home / 'prefect.db'}"
     for k, v in defaults.items():
         os.environ.setdefault(k, v)

@@ -84,6 +84,10 @@ def nightly_flow(inbox: str, store: str, profile_path: str | None = None, run_id
         if emb["status"] == "ok":
             stats["embed"]["reused"] += emb["reused"]
             stats["embed"]["computed"] += emb["computed"]
+        if tab["status"] == "ok" and tab["duration_s"] < fleet.windowing.window_s:
+            tab = {"status": "quarantined", "content": tab["content"], "duration_s": tab["duration_s"],
+                   "reason": f"{rec}: windowing.window_s: expected a recording at least one window "
+                             f"({fleet.windowing.window_s:g} s) long, got {tab['duration_s']:.3g} s"}
         bad = next((x for x in (tab, emb) if x["status"] != "ok"), None)
         if bad is not None:
             rec_rows[name] = {"recording_id": name, "content_hash": tab.get("content", ""),
