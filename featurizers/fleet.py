@@ -13,7 +13,7 @@ import numpy as np
 
 from featurizers import descriptors as desc
 from featurizers import scoring
-from featurizers.embed import apply_pca, fit_pca
+from featurizers.embed import fit_pca
 from featurizers.tables import cut_windows, place_on_clock, window_starts
 
 METRICS = ("riemann", "logeuclid", "euclid")
@@ -201,7 +201,6 @@ def score_fleet(recs: list[RecordingFeatures], *, windowing, descriptor, scoring
                               trim_fraction=scoring_cfg.trim_fraction, c=scoring_cfg.threshold_c)
     # Pass 2: refit the standardisation on the kept windows only, so planted/unknown anomalies do not inflate it.
     if scoring_cfg.trim_fraction > 0:
-        kept_mask_per_rec = {}
         base_pos = np.flatnonzero(in_base)
         kept = np.zeros(len(D), bool)
         kept[base_pos[bl.kept]] = True
@@ -210,7 +209,6 @@ def score_fleet(recs: list[RecordingFeatures], *, windowing, descriptor, scoring
             if d is None:
                 continue
             sel = kept[rec_idx == i]
-            kept_mask_per_rec[i] = sel
             if is_base[i] and sel.any():
                 starts_needed.append(wins[ok][sel].reshape(-1, wins.shape[2]) * scale + center)
         if starts_needed:
