@@ -204,18 +204,15 @@ def score_fleet(recs: list[RecordingFeatures], *, windowing, descriptor, scoring
         base_pos = np.flatnonzero(in_base)
         kept = np.zeros(len(D), bool)
         kept[base_pos[bl.kept]] = True
-        starts_needed = []
+        kept_samples = []
         for i, (wins, ok, t0, t1, d, _) in enumerate(per):
             if d is None:
                 continue
             sel = kept[rec_idx == i]
             if is_base[i] and sel.any():
-                starts_needed.append(wins[ok][sel].reshape(-1, wins.shape[2]) * scale + center)
-        if starts_needed:
-            allx = np.concatenate(starts_needed)
-            center = allx.mean(axis=0)
-            s = allx.std(axis=0)
-            scale = np.where(s > 1e-12, s, 1.0)
+                kept_samples.append(wins[ok][sel].reshape(-1, wins.shape[2]) * scale + center)
+        if kept_samples:
+            center, scale = fit_standardiser(kept_samples, [np.ones(len(x), bool) for x in kept_samples])
         per = describe_all(center, scale)
         D, rec_idx, times, _ = stack(per)
         in_base = is_base[rec_idx]
