@@ -61,24 +61,48 @@ def resolve_stream_file(rec_dir: Path, pattern: str, stream: str) -> Path:
 
 
 def read_table_stream(rec_dir: Path, stream) -> RawTable:
-    """Read one table stream (CSV, Parquet, ULog topic or ROS 2 bag topic) and clean it."""
+    """Read one table stream (CSV, Parquet, ULog topic or ROS 2 bag topic) and clean it.
+
+    The source columns/fields are `stream.fields` when given (then `stream.channels`, if given, renames them in
+    order), else `stream.channels`; a log topic with neither gives its default fields under their own names.
+    """
     path = resolve_stream_file(rec_dir, stream.file, stream.name)
-    cal = {ch: (c.bias, c.scale) for ch, c in stream.calibration.items()}
+    source = list(stream.fields) or list(stream.channels)
+    gaps: list[tuple[float, float]] = []
     if path.suffix.lower() in LOG_SUFFIXES or path.is_dir():
         from featurizers import logs
 
         kind = logs.log_kind(path)
         if kind == "ulog":
-            t, values, names = logs.read_ulog_topic(path, stream.topic, list(stream.channels) or None,
-                                                    instance=stream.instance)
+            t, values, names = logs.read_ulog_topic(path, stream.topic, source or None, instance=stream.instance)
+            gaps = logs.ulog_dropouts(path)
         elif kind == "rosbag":
-            t, values, names = logs.read_bag_topic(path, stream.topic, list(stream.channels) or None,
-                                                   stamp=stream.stamp)
+            t, values, names = logs.read_bag_topic(path, stream.topic, source or None, stamp=stream.stamp)
         else:
             raise InputError(path, f"streams.{stream.name}.file", "a ULog file or a ROS 2 bag", "unknown log format")
-        return clean_table(str(path), t, values, list(names), "s", cal, stream.clock_offset_s)
-    t, values = read_table_file(path, stream.time_column, list(stream.channels))
-    return clean_table(str(path), t, values, list(stream.channels), stream.time_unit, cal, stream.clock_offset_s)
+        unit = "s"
+    else:
+        t, values = read_table_file(path, stream.time_column, source)
+        names, unit = source, stream.time_unit
+    names = list(names)
+    if stream.fields and stream.channels:
+        if len(stream.channels) != len(names):
+            raise InputError(path, f"streams.{stream.name}.channels",
+                             f"one channel name for each of the {len(names)} fields read {names}",
+                             f"{len(stream.channels)} names {list(stream.channels)}")
+        names = list(stream.channels)
+    unknown = sorted(set(stream.calibration) - set(names))
+    if unknown:
+        raise InputError(path, f"streams.{stream.name}.calibration.{unknown[0]}",
+                         f"a calibration for one of the channels {names}", repr(unknown[0]))
+    cal = {ch: (c.bias, c.scale) for ch, c in stream.calibration.items()}
+    table = clean_table(str(path), t, values, names, unit, cal, stream.clock_offset_s)
+    if gaps:
+        # A logging dropout lost data on every topic: its span is a gap of this stream whatever the topic's own
+        # stamps show, judged by max_gap_s like any gap (ULog 'O' message: last stamp before, duration).
+        table.gaps = [(t_s + stream.clock_offset_s, t_s + stream.clock_offset_s + d) for t_s, d in gaps]
+        table.repairs["logging_dropouts"] = len(gaps)
+    return table
 
 
 def common_clock(tables: list[RawTable], rate_hz: float, max_gap_s: float

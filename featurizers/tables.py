@@ -29,6 +29,7 @@ class RawTable:
     values: np.ndarray  # (n, c) float64
     channels: list[str]
     repairs: dict[str, int] = field(default_factory=dict)
+    gaps: list[tuple[float, float]] = field(default_factory=list)  # (start, end) s of known data loss
 
 
 def read_table_file(path: Path, time_column: str, channels: list[str]) -> tuple[np.ndarray, np.ndarray]:
@@ -169,6 +170,9 @@ def resample(table: RawTable, t_clock: np.ndarray, max_gap_s: float) -> tuple[np
     """
     t, x = table.t, table.values
     valid = gap_mask(t, t_clock, max_gap_s)
+    for g0, g1 in table.gaps:
+        if g1 - g0 > max_gap_s:
+            valid &= ~((t_clock >= g0) & (t_clock <= g1))
     if len(t_clock) == 0:
         return np.empty((0, x.shape[1])), valid
     rate = 1.0 / float(np.median(np.diff(t)))

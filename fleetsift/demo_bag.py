@@ -96,3 +96,57 @@ def recording_to_bag(rec_dir: str | Path, out_path: str | Path, storage: str = "
                                       data=np.frombuffer(buf.getvalue(), np.uint8))
                 writer.write(c_cam, ns, ts.serialize_cdr(msg, CompressedImage.__msgtype__))
     return out
+
+
+BAG_PROFILE = """\
+# This recording arrived as a ROS 2 bag (MCAP storage) instead of imu.csv + camera.mp4. Its sections are laid over
+# the inbox profile's: they say only how to read the bag. `fields` are the bag's message fields, named in order by
+# the fleet's `channels`, so calibration, channel names and video settings stay the fleet's.
+[streams.imu]
+file = "bag"
+topic = "/imu"
+stamp = "header"
+fields = ["linear_acceleration.x", "linear_acceleration.y", "linear_acceleration.z",
+          "angular_velocity.x", "angular_velocity.y", "angular_velocity.z"]
+
+[streams.camera]
+file = "bag"
+topic = "/camera/image/compressed"
+stamp = "header"
+"""
+
+
+def demo_inbox_with_bag(src: str | Path, dst: str | Path, recording: str, storage: str = "mcap") -> Path:
+    """Copy the demo fleet `src` to `dst` with `recording` turned into a ROS 2 bag carrying its own profile.
+
+    The copy keeps modification times, so a second call finds every file unchanged and the store's caches hold.
+    An existing bag in `dst` is kept as it is.
+    """
+    import shutil
+
+    from fleetsift.profile import load_profile
+
+    src, dst = Path(src), Path(dst)
+    prof = load_profile(src / "profile.toml")
+    imu, cam = prof.streams.get("imu"), prof.streams.get("camera")
+    if imu is None or cam is None or not (src / recording).is_dir():
+        raise InputError(src, "streams / recording", f"a demo fleet with streams imu and camera and a recording "
+                         f"{recording!r}", f"streams {sorted(prof.streams)}")
+    dst.mkdir(parents=True, exist_ok=True)
+    for p in sorted(src.iterdir()):
+        if p.name == recording:
+            continue
+        if p.is_dir():
+            shutil.copytree(p, dst / p.name, dirs_exist_ok=True, copy_function=shutil.copy2)
+        else:
+            shutil.copy2(p, dst / p.name)
+    rec = dst / recording
+    if not (rec / "bag" / "metadata.yaml").is_file():
+        if rec.exists():
+            shutil.rmtree(rec)
+        rec.mkdir()
+        recording_to_bag(src / recording, rec / "bag", storage=storage, image_hz=cam.sample_hz)
+    own = rec / "profile.toml"
+    if not own.exists() or own.read_text() != BAG_PROFILE:  # rewritten only on change: keeps the cache keys
+        own.write_text(BAG_PROFILE)
+    return dst

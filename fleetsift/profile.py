@@ -41,6 +41,9 @@ class TableStream:
     channels: tuple[str, ...] = ()
     clock_offset_s: float = 0.0
     calibration: dict[str, Calibration] = field(default_factory=dict)
+    # Source names (CSV/Parquet columns, log topic fields) when they differ from the channel names: `channels`
+    # then names them in order, so a fleet mixing CSV and log recordings shares one set of channel names.
+    fields: tuple[str, ...] = ()
     topic: str = ""  # for log files (ULog, ROS 2 bag)
     instance: int = 0  # ULog multi-instance topics
     stamp: str = "header"  # ROS 2: header stamp or receive time
@@ -107,6 +110,7 @@ class Profile:
     descriptor: Descriptor = Descriptor()
     scoring: Scoring = Scoring()
     baseline: BaselineSpec = BaselineSpec()
+    raw: dict = field(default_factory=dict, compare=False, repr=False)  # the parsed TOML, for recording overlays
 
     def table_streams(self) -> list[TableStream]:
         return [s for s in self.streams.values() if isinstance(s, TableStream)]
@@ -231,13 +235,21 @@ class _Checker:
         return v
 
 
-def parse_profile(text: str, path: str = "<profile>") -> Profile:
-    """Parse and validate profile TOML text."""
-    c = _Checker(path)
+def _load_toml(text: str, path: str) -> dict:
     try:
-        data = tomllib.loads(text)
+        return tomllib.loads(text)
     except tomllib.TOMLDecodeError as e:
         raise ProfileError(path, "TOML syntax", "valid TOML", str(e)) from None
+
+
+def parse_profile(text: str, path: str = "<profile>") -> Profile:
+    """Parse and validate profile TOML text."""
+    return profile_from_dict(_load_toml(text, path), path)
+
+
+def profile_from_dict(data: dict, path: str = "<profile>") -> Profile:
+    """Validate already-parsed profile data."""
+    c = _Checker(path)
     c.no_unknown(data, {"windowing", "descriptor", "scoring", "baseline", "streams"}, "")
 
     w = c.table(data.get("windowing", {}), "windowing")
@@ -292,7 +304,7 @@ def parse_profile(text: str, path: str = "<profile>") -> Profile:
     channel_owner: dict[str, str] = {}
     for st in streams.values():
         if isinstance(st, TableStream):
-            for ch in st.channels:
+            for ch in st.channels or st.fields:
                 if ch in channel_owner:
                     c.fail(f"streams.{st.name}.channels", "channel names unique across streams",
                            f"{ch!r} also in streams.{channel_owner[ch]}")
@@ -300,17 +312,23 @@ def parse_profile(text: str, path: str = "<profile>") -> Profile:
     if not any(isinstance(st, TableStream) for st in streams.values()):
         c.fail("streams", "at least one table stream (it defines the common clock)", "only video streams")
     return Profile(path=path, streams=streams, windowing=windowing, descriptor=descriptor, scoring=scoring,
-                   baseline=baseline)
+                   baseline=baseline, raw=data)
 
 
 def _parse_table(c: _Checker, name: str, st: dict, where: str) -> TableStream:
-    allowed = {"kind", "file", "time_column", "time_unit", "channels", "clock_offset_s", "calibration", "topic",
-               "instance", "stamp"}
+    allowed = {"kind", "file", "time_column", "time_unit", "channels", "fields", "clock_offset_s", "calibration",
+               "topic", "instance", "stamp"}
     c.no_unknown(st, allowed, where)
     channels = c.strings(st, "channels", where, ())
+    fields = c.strings(st, "fields", where, ())
     topic = c.string(st, "topic", where, "")
-    if not channels and not topic:
+    if not channels and not fields and not topic:
         c.fail(f"{where}.channels", "a non-empty list of channel names", "none")
+    # A log field may expand to several channels (an array, a message), so only column sources are counted here;
+    # for logs the count is checked against what the file has when it is read.
+    if fields and channels and not topic and len(fields) != len(channels):
+        c.fail(f"{where}.channels", f"one channel name for each of the {len(fields)} fields {list(fields)}",
+               f"{len(channels)} names {list(channels)}")
     cal_raw = c.table(st.get("calibration", {}), f"{where}.calibration")
     cal: dict[str, Calibration] = {}
     for ch, spec in cal_raw.items():
@@ -331,6 +349,7 @@ def _parse_table(c: _Checker, name: str, st: dict, where: str) -> TableStream:
         channels=channels,
         clock_offset_s=c.number(st, "clock_offset_s", where, 0.0),
         calibration=cal,
+        fields=fields,
         topic=topic,
         instance=c.integer(st, "instance", where, 0, lo=0),
         stamp=c.string(st, "stamp", where, "header", choices=STAMP_SOURCES),
@@ -368,11 +387,42 @@ def load_profile(path: str | Path) -> Profile:
     return parse_profile(text, str(path))
 
 
+def overlay_streams(base: dict, own: dict) -> dict:
+    """`base` profile data with `own`'s stream sections laid over it key by key (calibration per channel).
+
+    A stream section of another `kind` than the base's, or one the base lacks, is taken as it stands.
+    """
+    out = {k: v for k, v in base.items()}
+    streams = {n: dict(st) if isinstance(st, dict) else st for n, st in base.get("streams", {}).items()}
+    own_streams = own.get("streams", {})
+    if not isinstance(own_streams, dict):
+        return {**out, "streams": own_streams}  # let validation name the bad value
+    for name, st in own_streams.items():
+        prev = streams.get(name)
+        if not isinstance(st, dict) or not isinstance(prev, dict) or st.get("kind", prev.get("kind")) != prev.get("kind"):
+            streams[name] = st
+            continue
+        merged = {**prev, **st}
+        if isinstance(prev.get("calibration"), dict) and isinstance(st.get("calibration"), dict):
+            merged["calibration"] = {**prev["calibration"], **st["calibration"]}
+        streams[name] = merged
+    out["streams"] = streams
+    return out
+
+
 def profile_for(recording_dir: Path, inbox_profile: Profile | None) -> Profile:
-    """A recording's own profile.toml wins over the inbox-level one."""
+    """The profile a recording is read with: the inbox-level one, with the recording's own profile.toml (if any)
+    laid over its stream sections, so a recording that arrives in another format restates only how to read it
+    (file, topic, fields) and keeps the fleet's channel names, calibration and video settings."""
     own = Path(recording_dir) / PROFILE_NAME
     if own.exists():
-        return load_profile(own)
+        if inbox_profile is None or not inbox_profile.raw:
+            return load_profile(own)
+        try:
+            text = own.read_text(encoding="utf-8")
+        except (OSError, UnicodeDecodeError) as e:
+            raise ProfileError(str(own), "file", "a readable UTF-8 text file", str(e)) from None
+        return profile_from_dict(overlay_streams(inbox_profile.raw, _load_toml(text, str(own))), str(own))
     if inbox_profile is None:
         raise ProfileError(str(recording_dir), PROFILE_NAME,
                            "a profile.toml in the recording folder, in the inbox, or --profile", "none found")

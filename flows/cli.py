@@ -143,10 +143,20 @@ def cmd_run(a) -> int:
     return EXIT_QUARANTINED if summary["quarantined"] else EXIT_OK
 
 
+DEMO_BAG_RECORDING = "rover-02-zone-z"
+
+
 def cmd_demo(a) -> int:
     root = Path(__file__).resolve().parent.parent
-    inbox = Path(a.inbox) if a.inbox else root / "sample_raw"
     store = Path(a.store) if a.store else root / "demo_out" / "store"
+    if a.inbox:
+        inbox = Path(a.inbox)
+    else:
+        # The bundled fleet, with one recording written as a ROS 2 bag so the log path runs too.
+        from fleetsift.demo_bag import demo_inbox_with_bag
+
+        inbox = demo_inbox_with_bag(root / "sample_raw", store.parent / "demo_inbox", DEMO_BAG_RECORDING)
+        print(f"demo inbox {inbox}: {DEMO_BAG_RECORDING} as a ROS 2 bag (MCAP), the rest as CSV + MP4")
     result = do_run(str(inbox), str(store), None, "local", None, 60.0, progress=True)
     from fleetsift.profile import load_profile
 

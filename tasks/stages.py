@@ -140,8 +140,8 @@ def run_embed(rec_dir: str, profile: Profile, store_root: str, progress: bool = 
                     bar = tqdm(total=total, desc=f"embed {rec_id}/{stream.name}", unit="frame", file=sys.stderr,
                                leave=False, mininterval=1.0)
                 t, e = embed.embed_frames(_frames(path, stream), bb, batch_size=stream.batch_size,
-                                          progress=(_bar_to(bar) if bar else None))
-                if bar:
+                                          progress=(_bar_to(bar) if bar is not None else None))
+                if bar is not None:
                     bar.close()
                 if len(t) == 0:
                     raise InputError(path, f"streams.{stream.name}", "a video with decodable frames", "no frames")

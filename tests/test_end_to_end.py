@@ -5,7 +5,6 @@ One cold run is shared by the tests in this module (it decodes and embeds every 
 
 import json
 import os
-import shutil
 import subprocess
 import sys
 from pathlib import Path
@@ -32,9 +31,12 @@ def fleetsift(*args, check=True, timeout=1200):
 
 @pytest.fixture(scope="module")
 def cold(tmp_path_factory):
+    # The demo's inbox: the bundled fleet with one recording written as a ROS 2 bag (as `fleetsift demo` runs it).
+    from flows.cli import DEMO_BAG_RECORDING
+    from fleetsift.demo_bag import demo_inbox_with_bag
+
     base = tmp_path_factory.mktemp("e2e")
-    inbox = base / "inbox"
-    shutil.copytree(SAMPLE, inbox, ignore=shutil.ignore_patterns("*.py", "README.md", "__pycache__"))
+    inbox = demo_inbox_with_bag(SAMPLE, base / "inbox", DEMO_BAG_RECORDING)
     store = base / "store"
     p = fleetsift("run", "--inbox", str(inbox), "--store", str(store), "--json")
     return inbox, store, json.loads(p.stdout), p
@@ -52,6 +54,10 @@ def test_run_json_contract(cold):
         assert r["n_windows"] > 20 and isinstance(r["max_score"], float) and r["n_flagged"] >= 0
     assert out["quarantined"] == []
     assert out["stages"]["embed"]["computed"] == len(names)
+    # The bag recording is read from the bag alone (scoring it beside the others needs the fleet's channel names).
+    from flows.cli import DEMO_BAG_RECORDING
+
+    assert sorted(p.name for p in (inbox / DEMO_BAG_RECORDING).iterdir()) == ["bag", "profile.toml"]
 
 
 def test_store_tables_readable_by_deltalake(cold):

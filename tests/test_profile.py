@@ -80,3 +80,45 @@ def test_channel_names_unique_across_streams():
     text = GOOD + '\n[streams.imu2]\nkind = "table"\nfile = "b.csv"\nchannels = ["ax"]\n'
     with pytest.raises(ProfileError, match="unique across streams"):
         parse_profile(text)
+
+
+def test_fields_rename_to_channels_and_count_must_match():
+    text = GOOD.replace('channels = ["ax", "ay", "az"]', 'fields = ["acc_x", "acc_y", "acc_z"]\n'
+                                                         'channels = ["ax", "ay", "az"]')
+    st = parse_profile(text).streams["imu"]
+    assert st.fields == ("acc_x", "acc_y", "acc_z") and st.channels == ("ax", "ay", "az")
+    with pytest.raises(ProfileError) as e:
+        parse_profile(text.replace('"acc_z"]', '"acc_z", "acc_w"]'), "fleet.toml")
+    assert e.value.field == "streams.imu.channels" and "one channel name for each of the 4 fields" in str(e.value)
+
+
+def test_recording_profile_lays_its_stream_sections_over_the_fleets(tmp_path):
+    from fleetsift.profile import profile_for
+
+    fleet = parse_profile(GOOD, "fleet.toml")
+    rec = tmp_path / "rec-bag"
+    rec.mkdir()
+    (rec / "profile.toml").write_text('[streams.imu]\nfile = "bag"\ntopic = "/imu"\n'
+                                      'fields = ["linear_acceleration"]\n'
+                                      '[streams.imu.calibration]\nay = { bias = 0.5 }\n'
+                                      '[streams.camera]\nfile = "bag"\ntopic = "/camera"\n')
+    p = profile_for(rec, fleet)
+    imu, cam = p.streams["imu"], p.streams["camera"]
+    assert (imu.file, imu.topic, imu.fields, imu.channels) == ("bag", "/imu", ("linear_acceleration",),
+                                                                ("ax", "ay", "az"))
+    # Calibration merges per channel: the fleet's ax stays, the recording adds ay.
+    assert imu.calibration["ax"].bias == 0.1 and imu.calibration["ax"].scale == 2.0
+    assert imu.calibration["ay"].bias == 0.5
+    assert (cam.file, cam.topic, cam.clock_offset_s, cam.pca_dim) == ("bag", "/camera", -0.35, 3)
+    assert p.path.endswith("profile.toml") and str(rec) in p.path
+    # A section of another kind replaces the fleet's instead of merging into it.
+    (rec / "profile.toml").write_text('[streams.camera]\nkind = "table"\nfile = "cam.csv"\nchannels = ["lux"]\n')
+    cam = profile_for(rec, fleet).streams["camera"]
+    assert cam.kind == "table" and cam.channels == ("lux",) and cam.file == "cam.csv"
+    # Errors in the overlay name the recording's own file.
+    (rec / "profile.toml").write_text('[streams.imu]\ntopic = 3\n')
+    with pytest.raises(ProfileError) as e:
+        profile_for(rec, fleet)
+    assert e.value.field == "streams.imu.topic" and e.value.file.endswith("rec-bag/profile.toml")
+    # Without a recording profile the fleet's applies unchanged.
+    assert profile_for(tmp_path, fleet) is fleet

@@ -142,3 +142,14 @@ def test_parquet_reads_like_csv(tmp_path):
     b = read_table_file(tmp_path / "imu.csv", "time", ["ax"])
     np.testing.assert_array_equal(a[0], b[0])
     np.testing.assert_array_equal(a[1], b[1])
+
+
+def test_known_data_loss_is_a_gap_even_where_the_stamps_look_dense():
+    # A logging dropout (ULog 'O' message) says data was lost; judged by max_gap_s like a gap in the stamps.
+    t = np.arange(0, 3, 0.01)
+    tb = _table(t, np.sin(t)[:, None])
+    clock = uniform_clock(0, 2.9, 50.0)
+    tb.gaps = [(1.0, 1.5), (2.0, 2.1)]  # 0.5 s > max_gap_s, 0.1 s <= max_gap_s
+    _, valid = resample(tb, clock, 0.25)
+    lost = (clock >= 1.0) & (clock <= 1.5)
+    assert not valid[lost].any() and valid[~lost].all()
