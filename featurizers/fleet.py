@@ -13,7 +13,7 @@ import numpy as np
 
 from featurizers import descriptors as desc
 from featurizers import scoring
-from featurizers.embed import fit_pca
+from featurizers.pca import fit_pca
 from featurizers.tables import cut_windows, place_on_clock, window_starts
 
 METRICS = ("riemann", "logeuclid", "euclid")

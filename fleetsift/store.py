@@ -16,6 +16,7 @@ import contextlib
 import errno
 import fcntl
 import hashlib
+import importlib.util
 import inspect
 import io
 import json
@@ -75,11 +76,21 @@ TABLES = tuple(TABLE_SCHEMAS)
 
 
 def code_version(*objects: Any) -> str:
-    """A stage's code version: the hash of the source of the modules it runs (so an edit invalidates its cache)."""
+    """A stage's code version: the hash of the source of the modules it runs (so an edit invalidates its cache).
+
+    A module may be given by its dotted name: its source file is read without importing it (so building a key
+    for the embedding stage does not load torch).
+    """
     h = hashlib.sha256(__version__.encode())
     for obj in objects:
         try:
-            h.update(inspect.getsource(obj).encode())
+            if isinstance(obj, str):
+                spec = importlib.util.find_spec(obj)
+                if spec is None or not spec.origin:
+                    raise OSError(obj)
+                h.update(Path(spec.origin).read_text(encoding="utf-8").encode())
+            else:
+                h.update(inspect.getsource(obj).encode())
         except (OSError, TypeError):
             h.update(repr(obj).encode())
     return h.hexdigest()[:16]

@@ -55,6 +55,7 @@ def summarise(result: dict, metric: str) -> dict:
         "quarantined": [{"recording_id": r["recording_id"], "reason": r["reason"]}
                         for r in result["recordings"] if r["status"] == "quarantined"],
         "stages": result["stages"],
+        "orchestrator": result.get("orchestrator", "prefect"),
         "elapsed_s": result["elapsed_s"],
         "report": result.get("report"),
         "note": SAFETY_NOTE,
@@ -81,10 +82,15 @@ def print_table(summary: dict, out=sys.stdout) -> None:
 
 
 def do_run(inbox: str, store: str, profile: str | None, runner: str, dask_address: str | None, wait_s: float,
-           progress: bool, report: bool = True) -> dict:
+           progress: bool, report: bool = True, orchestrate: str = "auto", rebuild: tuple[str, ...] = ()) -> dict:
+    """One night under the store's write lock, then its report.
+
+    With ``orchestrate="auto"`` a local night first tries the direct path (flows.night.CACHED_ONLY): when every
+    stage output is already cached it is recorded without starting Prefect, whose start-up would be most of the
+    time; as soon as one output is missing (checked before any write) the Prefect flow runs instead.
+    """
     env.configure(store)
     from fleetsift.store import Store
-    from flows.nightly import nightly_flow
 
     st = Store(store).init()
     with st.lock(wait_s=wait_s):
@@ -92,22 +98,21 @@ def do_run(inbox: str, store: str, profile: str | None, runner: str, dask_addres
         removed = st.remove_orphans()
         if any(removed.values()):
             print(f"removed rows of unfinished runs: {removed}", file=sys.stderr)
-        fl = nightly_flow
-        parallel = False
-        if runner == "dask":
-            import logging
+        from flows import night
 
-            from prefect_dask import DaskTaskRunner
-
-            logging.getLogger("distributed").setLevel(logging.WARNING)  # dozens of INFO lines per run otherwise
-
-            kwargs = {"address": dask_address} if dask_address else {
-                "cluster_kwargs": {"n_workers": 2, "threads_per_worker": 1, "processes": True,
-                                   "dashboard_address": None}}
-            fl = nightly_flow.with_options(task_runner=DaskTaskRunner(**kwargs))
-            parallel = True
-        result = fl(inbox=str(Path(inbox).resolve()), store=str(st.root), profile_path=profile, parallel=parallel,
-                    progress=progress)
+        if rebuild:  # a misspelt name is refused before anything starts
+            night.rebuild_plan(night.fleet_profile(Path(inbox).resolve(), profile), tuple(rebuild))
+        result = None
+        if orchestrate == "auto" and runner == "local" and not rebuild:
+            try:
+                result = night.run_night(night.CACHED_ONLY, inbox=str(Path(inbox).resolve()), store=str(st.root),
+                                         profile_path=profile, progress=progress)
+                result["orchestrator"] = "none"
+            except night.NotCached as e:
+                if progress:
+                    print(f"to compute: {e} (and maybe more); starting the Prefect flow", file=sys.stderr)
+        if result is None:
+            result = _prefect_run(st, inbox, profile, runner, dask_address, progress, rebuild)
         if report:
             try:
                 from flows.report import write_report
@@ -120,12 +125,35 @@ def do_run(inbox: str, store: str, profile: str | None, runner: str, dask_addres
     return result
 
 
+def _prefect_run(st, inbox: str, profile: str | None, runner: str, dask_address: str | None, progress: bool,
+                 rebuild: tuple[str, ...] = ()) -> dict:
+    from flows.nightly import nightly_flow
+
+    fl = nightly_flow
+    parallel = False
+    if runner == "dask":
+        import logging
+
+        from prefect_dask import DaskTaskRunner
+
+        logging.getLogger("distributed").setLevel(logging.WARNING)  # dozens of INFO lines per run otherwise
+
+        kwargs = {"address": dask_address} if dask_address else {
+            "cluster_kwargs": {"n_workers": 2, "threads_per_worker": 1, "processes": True,
+                               "dashboard_address": None}}
+        fl = nightly_flow.with_options(task_runner=DaskTaskRunner(**kwargs))
+        parallel = True
+    return fl(inbox=str(Path(inbox).resolve()), store=str(st.root), profile_path=profile, parallel=parallel,
+              progress=progress, rebuild=list(rebuild))
+
+
 def cmd_run(a) -> int:
     from fleetsift.errors import InputError, StoreLockedError
     from fleetsift.profile import load_profile
 
     try:
-        result = do_run(a.inbox, a.store, a.profile, a.runner, a.dask_address, a.wait, progress=not a.json)
+        result = do_run(a.inbox, a.store, a.profile, a.runner, a.dask_address, a.wait, progress=not a.json,
+                        orchestrate=a.orchestrate, rebuild=tuple(a.rebuild or ()))
     except StoreLockedError as e:
         print(f"fleetsift: {e}", file=sys.stderr)
         return EXIT_LOCKED
@@ -284,6 +312,11 @@ def build_parser() -> argparse.ArgumentParser:
     r.add_argument("--runner", choices=("local", "dask"), default="local")
     r.add_argument("--dask-address")
     r.add_argument("--wait", type=float, default=0.0, help="seconds to wait for another run's store lock")
+    r.add_argument("--rebuild", action="append", metavar="NAME",
+                   help="recompute a stage (tables, embed, score) or a stream's branch even when cached; repeatable")
+    r.add_argument("--orchestrate", choices=("auto", "always"), default="auto",
+                   help="auto: a night with nothing to compute is recorded without starting Prefect; "
+                        "always: every night runs as a Prefect flow")
     r.add_argument("--json", action="store_true")
     r.set_defaults(fn=cmd_run)
 

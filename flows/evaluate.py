@@ -31,7 +31,7 @@ def prepare(inbox: str, store: str, profile_path: str | None = None, progress: b
 
     env.configure(store)  # the stage modules import Prefect, which reads its settings at import time
     from fleetsift.profile import profile_for
-    from flows.nightly import discover, fleet_profile
+    from flows.night import discover, fleet_profile
     from tasks import stages
 
     tables_fn = tables_fn or stages.run_tables

@@ -311,6 +311,28 @@ def _fleet_profile(run, profile: str | None):
     return prof, note
 
 
+def _body_key(w: pd.DataFrame, recs: pd.DataFrame, fleet_prof, prof_note: str, top_n: int) -> str:
+    """What the windows and timelines sections show: the run's window rows (not its id), the recordings it read
+    (where, with what content and outcome), the profile they are read with, and this module's code."""
+    import hashlib
+    import sys
+
+    from fleetsift.store import code_version
+
+    h = hashlib.sha256(code_version(sys.modules[__name__]).encode())
+    cols = [c for c in w.columns if c != "run_id"]
+    h.update(pd.util.hash_pandas_object(w[cols].sort_values(["recording_id", "metric", "window_index"]),
+                                        index=False).values.tobytes())
+    rcols = [c for c in ("recording_id", "status", "reason", "duration_s", "content_hash", "path") if c in recs]
+    h.update(pd.util.hash_pandas_object(recs[rcols].astype(str), index=False).values.tobytes())
+    own = []
+    for pth in recs.get("path", pd.Series(dtype=str)).astype(str):
+        f = Path(pth) / "profile.toml" if pth else None
+        own.append(f"{f.stat().st_mtime_ns}:{f.stat().st_size}" if f is not None and f.is_file() else "")
+    h.update(repr((fleet_prof.digest() if fleet_prof is not None else None, prof_note, int(top_n), own)).encode())
+    return h.hexdigest()[:24]
+
+
 def write_report(store: str, run_id: str | None, out: str, as_of: int | None = None, top_n: int = TOP_N,
                  profile: str | None = None) -> str:
     """Write the HTML report of ``run_id`` (default: the latest run at ``as_of``) to ``out``; returns the path.
@@ -395,76 +417,87 @@ def write_report(store: str, run_id: str | None, out: str, as_of: int | None = N
                      "</p><ul>" + "".join(f"<li><b>{_e(r.recording_id)}</b>: {_e(r.reason)}</li>"
                                           for r in quar.itertuples()) + "</ul>")
 
-    # --- windows worth a look
-    parts.append(f"<h2>Windows worth a look</h2><p>The {len(top)} highest-scoring flagged windows of the primary "
-                 "metric, one per event (a window overlapping a higher-ranked one of the same recording is left "
-                 "out; all flagged windows are shaded in the timelines below).</p>")
-    if not len(top):
-        parts.append("<p>No window crossed the threshold in this run.</p>")
-    thumbs_by_rec: dict[str, dict] = {}
-    for rid, g in top.groupby("recording_id"):
-        src, _ = source(rid)
-        if src is None or not src.profile.video_streams():
-            continue
-        targets = []
-        for r in g.itertuples():
-            span = r.t_end_s - r.t_start_s
-            targets += [r.t_start_s + 0.1 * span, (r.t_start_s + r.t_end_s) / 2, r.t_end_s - 0.1 * span]
-        try:
-            thumbs_by_rec[rid] = {"targets": g["window_index"].tolist(), "frames": src.thumbnails(targets)}
-        except Exception as e:  # a damaged video must not cost the report
-            thumbs_by_rec[rid] = {"error": f"video unreadable: {e}"}
-    for r in top.itertuples():
-        rank = rank_of[(r.recording_id, r.window_index)]
-        src, note = source(r.recording_id)
-        shares = dict(parse_channels(r.top_channels))
-        drivers = "".join(f"<div><span class='bar' style='width:{max(2, round(100 * v))}px'></span>"
-                          f"{_e(k)} <b>{v:.0%}</b></div>" for k, v in shares.items()) or "<div>-</div>"
-        media = []
-        tinfo = thumbs_by_rec.get(r.recording_id)
-        if tinfo and "error" in tinfo:
-            media.append(f"<p class='note'>{_e(tinfo['error'])}</p>")
-        elif tinfo:
-            j = tinfo["targets"].index(r.window_index)
-            for sname, frames in tinfo["frames"].items():
-                figs = []
-                for lab, img in zip(("start", "middle", "end"), frames[3 * j: 3 * j + 3]):
-                    if img is None:
-                        figs.append(f"<figure><p class='note'>no frame ({lab})</p></figure>")
-                    else:
-                        figs.append(f"<figure><img alt='{_e(sname)} {lab} of window {rank}' src='{_jpeg(img)}'>"
-                                    f"{_e(sname)}, {lab}</figure>")
-                media.append("<div class='thumbs'>" + "".join(figs) + "</div>")
-        elif src is not None and not src.profile.video_streams():
-            media.append("<p class='note'>no video stream in this recording</p>")
-        if src is not None:
-            span = r.t_end_s - r.t_start_s
-            series = src.traces(r.t_start_s - 0.5 * span, r.t_end_s + 0.5 * span)
-            media.append(f"<img alt='table traces of window {rank}' "
-                         f"src='{traces_png(series, r.t_start_s, r.t_end_s, shares)}'>")
-        else:
-            media.append(f"<p class='note'>{_e(note)}</p>")
-        ratio = r.score / r.threshold if r.threshold else float("nan")
-        parts.append(
-            f"<div class='card' id='window-{rank}' data-recording='{_e(r.recording_id)}'>"
-            f"<h3><span class='rank'>{rank}</span><a href='#{_anchor(r.recording_id)}'>{_e(r.recording_id)}</a>, "
-            f"{r.t_start_s:.1f}&ndash;{r.t_end_s:.1f} s &middot; score {r.score:.3f} "
-            f"({_fmt(ratio, '.2f')} &times; threshold)</h3><div class='row'>"
-            f"<div class='drivers'><b>Driving channels</b> (share of the deviation){drivers}</div>"
-            f"<div>{''.join(media)}</div></div></div>")
+    # --- windows worth a look and timelines: the costly part (video thumbnails, plots), cached by what it shows
+    body_path = st.cache_path("report", _body_key(w, recs, fleet_prof, prof_note, top_n)).with_suffix(".html")
+    if body_path.exists():
+        parts.append(body_path.read_text(encoding="utf-8"))
+    else:
+        start = len(parts)
+        # --- windows worth a look
+        parts.append(f"<h2>Windows worth a look</h2><p>The {len(top)} highest-scoring flagged windows of the primary "
+                     "metric, one per event (a window overlapping a higher-ranked one of the same recording is left "
+                     "out; all flagged windows are shaded in the timelines below).</p>")
+        if not len(top):
+            parts.append("<p>No window crossed the threshold in this run.</p>")
+        thumbs_by_rec: dict[str, dict] = {}
+        for rid, g in top.groupby("recording_id"):
+            src, _ = source(rid)
+            if src is None or not src.profile.video_streams():
+                continue
+            targets = []
+            for r in g.itertuples():
+                span = r.t_end_s - r.t_start_s
+                targets += [r.t_start_s + 0.1 * span, (r.t_start_s + r.t_end_s) / 2, r.t_end_s - 0.1 * span]
+            try:
+                thumbs_by_rec[rid] = {"targets": g["window_index"].tolist(), "frames": src.thumbnails(targets)}
+            except Exception as e:  # a damaged video must not cost the report
+                thumbs_by_rec[rid] = {"error": f"video unreadable: {e}"}
+        for r in top.itertuples():
+            rank = rank_of[(r.recording_id, r.window_index)]
+            src, note = source(r.recording_id)
+            shares = dict(parse_channels(r.top_channels))
+            drivers = "".join(f"<div><span class='bar' style='width:{max(2, round(100 * v))}px'></span>"
+                              f"{_e(k)} <b>{v:.0%}</b></div>" for k, v in shares.items()) or "<div>-</div>"
+            media = []
+            tinfo = thumbs_by_rec.get(r.recording_id)
+            if tinfo and "error" in tinfo:
+                media.append(f"<p class='note'>{_e(tinfo['error'])}</p>")
+            elif tinfo:
+                j = tinfo["targets"].index(r.window_index)
+                for sname, frames in tinfo["frames"].items():
+                    figs = []
+                    for lab, img in zip(("start", "middle", "end"), frames[3 * j: 3 * j + 3]):
+                        if img is None:
+                            figs.append(f"<figure><p class='note'>no frame ({lab})</p></figure>")
+                        else:
+                            figs.append(f"<figure><img alt='{_e(sname)} {lab} of window {rank}' src='{_jpeg(img)}'>"
+                                        f"{_e(sname)}, {lab}</figure>")
+                    media.append("<div class='thumbs'>" + "".join(figs) + "</div>")
+            elif src is not None and not src.profile.video_streams():
+                media.append("<p class='note'>no video stream in this recording</p>")
+            if src is not None:
+                span = r.t_end_s - r.t_start_s
+                series = src.traces(r.t_start_s - 0.5 * span, r.t_end_s + 0.5 * span)
+                media.append(f"<img alt='table traces of window {rank}' "
+                             f"src='{traces_png(series, r.t_start_s, r.t_end_s, shares)}'>")
+            else:
+                media.append(f"<p class='note'>{_e(note)}</p>")
+            ratio = r.score / r.threshold if r.threshold else float("nan")
+            parts.append(
+                f"<div class='card' id='window-{rank}' data-recording='{_e(r.recording_id)}'>"
+                f"<h3><span class='rank'>{rank}</span><a href='#{_anchor(r.recording_id)}'>{_e(r.recording_id)}</a>, "
+                f"{r.t_start_s:.1f}&ndash;{r.t_end_s:.1f} s &middot; score {r.score:.3f} "
+                f"({_fmt(ratio, '.2f')} &times; threshold)</h3><div class='row'>"
+                f"<div class='drivers'><b>Driving channels</b> (share of the deviation){drivers}</div>"
+                f"<div>{''.join(media)}</div></div></div>")
 
-    # --- timelines
-    parts.append("<h2>Score timelines</h2><p>One point per window at its centre; shaded: flagged spans; dashed: "
-                 "threshold; numbers: the windows above; ticks at the bottom: windows left unscored because they "
-                 "straddle a gap.</p>")
-    for rid, g in prim.groupby("recording_id"):
-        g = g.sort_values("window_index")
-        if not g["score"].notna().any():
-            continue
-        marks = {int(widx): rk for (rr, widx), rk in rank_of.items() if rr == rid}
-        thr = float(g["threshold"].iloc[0])
-        parts.append(f"<h3 id='{_anchor(rid)}'>{_e(rid)}</h3><img alt='score timeline {_e(rid)}' "
-                     f"src='{timeline_png(g, thr, marks)}'>")
+        # --- timelines
+        parts.append("<h2>Score timelines</h2><p>One point per window at its centre; shaded: flagged spans; dashed: "
+                     "threshold; numbers: the windows above; ticks at the bottom: windows left unscored because they "
+                     "straddle a gap.</p>")
+        for rid, g in prim.groupby("recording_id"):
+            g = g.sort_values("window_index")
+            if not g["score"].notna().any():
+                continue
+            marks = {int(widx): rk for (rr, widx), rk in rank_of.items() if rr == rid}
+            thr = float(g["threshold"].iloc[0])
+            parts.append(f"<h3 id='{_anchor(rid)}'>{_e(rid)}</h3><img alt='score timeline {_e(rid)}' "
+                         f"src='{timeline_png(g, thr, marks)}'>")
+
+        body_path.parent.mkdir(parents=True, exist_ok=True)
+        tmp = body_path.with_suffix(".html.tmp")
+        tmp.write_text("".join(parts[start:]), encoding="utf-8")
+        tmp.replace(body_path)
 
     parts.append(
         "<h2>How to read this report</h2><p>Each window of the common clock is described by an SPD matrix of its "

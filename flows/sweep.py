@@ -37,7 +37,7 @@ from featurizers.evaluation import hanley_mcneil_se, label_windows, read_labels,
 from fleetsift.errors import InputError
 from fleetsift.profile import DESCRIPTOR_KINDS, METRICS, Profile
 from flows.evaluate import prepare
-from tasks import stages
+from tasks import flow_tasks, stages
 
 PARAMS = ("window_s", "hop_s", "k", "kind", "metric", "ridge")
 DESIGNS = ("one_at_a_time", "full")
@@ -218,8 +218,8 @@ def sweep_flow(inbox: str, store: str, labels: str, grid_path: str | None = None
     """Map the fleet step over the grid's points on the cached stage outputs; write sweep.csv and sweep.png."""
     started = time.time()
     read_labels(labels)  # fail before any work on a bad labels file
-    profile, prepared, quarantined = prepare(inbox, store, profile_path, tables_fn=stages.tables_task,
-                                             embed_fn=stages.embed_task)
+    profile, prepared, quarantined = prepare(inbox, store, profile_path, tables_fn=flow_tasks.tables_task,
+                                             embed_fn=flow_tasks.embed_task)
     if not prepared:
         raise InputError(inbox, "recordings", "at least one readable recording", "none")
     grid = load_grid(grid_path, profile)

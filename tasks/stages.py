@@ -2,7 +2,8 @@
 
 Every stage output is stored under stage_key(content hash, the profile section the stage reads, code version), so
 a warm night reuses everything unchanged and an IMU-calibration change never re-decodes video. The plain functions
-(`run_*`) do the work and are what tests call; the `@task` wrappers at the bottom are all Prefect sees.
+(`run_*`) do the work and are what tests call; the `@task` wrappers in tasks/flow_tasks.py are all Prefect sees.
+This module never imports Prefect: a night with nothing to compute runs these functions directly.
 """
 
 from __future__ import annotations
@@ -15,15 +16,19 @@ from typing import Any
 
 import numpy as np
 import pandas as pd
-from prefect import task
-from prefect.cache_policies import NONE
 
 from fleetsift.errors import InputError
 from fleetsift.profile import Profile, VideoStream
 from fleetsift.store import Store, code_version, stage_key
-from featurizers import descriptors, embed, fleet, recording, scoring, spd, tables, video
+from featurizers import descriptors, fleet, pca, recording, scoring, spd, tables, video, weights
+# featurizers.embed (torch, torchvision) is imported only where frames are embedded: a night that reuses every
+# embedding never loads them.
 
 _BACKBONES: dict[tuple, Any] = {}
+
+
+class NotCached(Exception):
+    """A stage called with ``cached_only=True`` whose output is not in the cache (raised before any work)."""
 
 
 def _tables_version() -> str:
@@ -31,11 +36,11 @@ def _tables_version() -> str:
 
 
 def _embed_version() -> str:
-    return code_version(video, embed)
+    return code_version(video, "featurizers.embed", weights)
 
 
 def _score_version() -> str:
-    return code_version(fleet, descriptors, scoring, spd)
+    return code_version(fleet, descriptors, scoring, spd, pca)
 
 
 def recording_hash(store: Store, rec_dir: Path, files: list[Path]) -> str:
@@ -56,8 +61,9 @@ def quarantined(rec_id: str, reason: str, **extra) -> dict:
     return {"recording_id": rec_id, "status": "quarantined", "reason": reason, **extra}
 
 
-def run_tables(rec_dir: str, profile: Profile, store_root: str) -> dict:
-    """Table streams -> calibrated, resampled common clock (one .npz per recording)."""
+def run_tables(rec_dir: str, profile: Profile, store_root: str, cached_only: bool = False, force: bool = False) -> dict:
+    """Table streams -> calibrated, resampled common clock (one .npz per recording); `force` recomputes and
+    overwrites a cached output."""
     store = Store(store_root)
     rec_dir = Path(rec_dir)
     rec_id = rec_dir.name
@@ -69,10 +75,12 @@ def run_tables(rec_dir: str, profile: Profile, store_root: str) -> dict:
                    "rate_hz": profile.windowing.rate_hz, "max_gap_s": profile.windowing.max_gap_s}
         key = stage_key("tables", content, section, _tables_version())
         out = store.cache_path("tables", key)
-        if out.exists():
+        if out.exists() and not force:
             meta = json.loads(str(Store.load_arrays(out)["meta"]))
             return {"recording_id": rec_id, "status": "ok", "path": str(out), "reused": True, "content": content,
                     **meta}
+        if cached_only:
+            raise NotCached(f"tables of {rec_id}")
         raws = [recording.read_table_stream(rec_dir, s) for s in streams]
         t0, t, values, valid, names = recording.common_clock(raws, profile.windowing.rate_hz,
                                                              profile.windowing.max_gap_s)
@@ -88,6 +96,8 @@ def run_tables(rec_dir: str, profile: Profile, store_root: str) -> dict:
 
 
 def _backbone(stream: VideoStream):
+    from featurizers import embed
+
     key = (stream.backbone, stream.weights, stream.image_size, stream.threads)
     if key not in _BACKBONES:
         _BACKBONES[key] = embed.load_backbone(stream.backbone, weights=stream.weights or None,
@@ -109,8 +119,10 @@ def _bar_to(bar):
     return update
 
 
-def run_embed(rec_dir: str, profile: Profile, store_root: str, progress: bool = True) -> dict:
-    """Video streams -> per-frame backbone embeddings at their presentation timestamps (one .npz per stream)."""
+def run_embed(rec_dir: str, profile: Profile, store_root: str, progress: bool = True,
+              cached_only: bool = False, force_streams: tuple[str, ...] = ()) -> dict:
+    """Video streams -> per-frame backbone embeddings at their presentation timestamps (one .npz per stream);
+    streams named in `force_streams` are recomputed even when cached."""
     store = Store(store_root)
     rec_dir = Path(rec_dir)
     rec_id = rec_dir.name
@@ -120,15 +132,17 @@ def run_embed(rec_dir: str, profile: Profile, store_root: str, progress: bool = 
         for stream in profile.video_streams():
             path = recording.resolve_stream_file(rec_dir, stream.file, stream.name)
             content = recording_hash(store, rec_dir, [path])
-            weights_fp = embed.backbone_fingerprint(stream.backbone, stream.weights or None)
+            weights_fp = weights.backbone_fingerprint(stream.backbone, stream.weights or None)
             # Clock offset, PCA size and thread count do not change the embeddings: they stay out of the key.
             section = {"file": stream.file, "topic": stream.topic, "stamp": stream.stamp,
                        "sample_hz": stream.sample_hz, "backbone": stream.backbone, "weights": weights_fp,
                        "image_size": stream.image_size}
             key = stage_key("embed", content, section, _embed_version())
             out = store.cache_path("embed", key)
-            if out.exists():
+            if out.exists() and stream.name not in force_streams:
                 reused += 1
+            elif cached_only:
+                raise NotCached(f"embeddings of {rec_id}/{stream.name}")
             else:
                 bb = _backbone(stream)
                 bar = None
@@ -139,6 +153,8 @@ def run_embed(rec_dir: str, profile: Profile, store_root: str, progress: bool = 
                     total = int(info.get("duration_s", 0) * stream.sample_hz) or None
                     bar = tqdm(total=total, desc=f"embed {rec_id}/{stream.name}", unit="frame", file=sys.stderr,
                                leave=False, mininterval=1.0)
+                from featurizers import embed
+
                 t, e = embed.embed_frames(_frames(path, stream), bb, batch_size=stream.batch_size,
                                           progress=(_bar_to(bar) if bar is not None else None))
                 if bar is not None:
@@ -166,21 +182,24 @@ def load_features(profile: Profile, tab: dict, emb: dict) -> fleet.RecordingFeat
                                    videos=videos)
 
 
-def run_score(prepared: list[dict], profile: Profile, store_root: str, run_id: str) -> dict:
+def run_score(prepared: list[dict], profile: Profile, store_root: str, run_id: str, cached_only: bool = False,
+              force: bool = False) -> dict:
     """Fit the baseline on the batch and score every window; writes the run's window rows to a staging Parquet."""
     store = Store(store_root)
-    recs, keys = [], []
-    for p in prepared:
-        recs.append(load_features(profile, p["tables"], p["embed"]))
-        keys.append([p["tables"]["path"], sorted(p["embed"].get("paths", {}).values())])
+    # Recording ids and the inputs' cache keys (file names, not paths: a store moved or copied keeps its scores).
+    keys = [[p["tables"]["recording_id"], Path(p["tables"]["path"]).name,
+             sorted(Path(x).name for x in p["embed"].get("paths", {}).values())] for p in prepared]
     section = {k: profile.section(k) for k in ("windowing", "descriptor", "scoring", "baseline")}
     section["pca"] = {s.name: s.pca_dim for s in profile.video_streams()}
     section["offsets"] = {s.name: s.clock_offset_s for s in profile.video_streams()}
     key = stage_key("score", json.dumps(keys), section, _score_version())
     out = store.cache_path("score", key).with_suffix(".parquet")
-    if out.exists() and out.with_suffix(".json").exists():
+    if out.exists() and out.with_suffix(".json").exists() and not force:
         meta = json.loads(out.with_suffix(".json").read_text())
         return {"path": str(out), "reused": True, **meta}
+    if cached_only:
+        raise NotCached("fleet scores")
+    recs = [load_features(profile, p["tables"], p["embed"]) for p in prepared]
     pca_dims = {s.name: s.pca_dim for s in profile.video_streams()}
     gaps = {s.name: fleet.video_gap_s(s.sample_hz, profile.windowing.max_gap_s) for s in profile.video_streams()}
     res = fleet.score_fleet(recs, windowing=profile.windowing, descriptor=profile.descriptor,
@@ -275,11 +294,3 @@ def run_write(store_root: str, run_id: str, started_at: float, profile: Profile,
     }])
     store.append("runs", runs)
     return {"version": store.version("runs"), "windows_version": store.version("windows")}
-
-
-# --- Prefect tasks: thin wrappers. Our own content-addressed keys do the caching, so Prefect's is off. ----------
-
-tables_task = task(name="tables", cache_policy=NONE, persist_result=False)(run_tables)
-embed_task = task(name="embed", cache_policy=NONE, persist_result=False)(run_embed)
-score_task = task(name="score", cache_policy=NONE, persist_result=False)(run_score)
-write_task = task(name="write-store", cache_policy=NONE, persist_result=False)(run_write)

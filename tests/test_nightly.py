@@ -24,6 +24,8 @@ import numpy as np
 import pandas as pd
 import pytest
 
+from fleetsift.errors import InputError
+
 ROOT = Path(__file__).resolve().parent.parent
 BIN = Path(sys.executable).parent
 N_FIRST = 3  # recordings of the first night; one more arrives for the second
@@ -117,6 +119,40 @@ def test_new_recording_is_the_only_one_computed(two_nights, pool):
     assert all(r["status"] == "scored" and r["n_windows"] > 0 for r in second["recordings"])
     assert second["store_version"] == first["store_version"] + 1
     assert second["run_id"] != first["run_id"]
+
+
+@pytest.mark.slow
+@pytest.mark.timeout(1200)
+def test_warm_night_skips_the_orchestrator_and_rebuilds_recompute_on_purpose(two_nights, tmp_path):
+    inbox, src, _, second = two_nights
+    store = tmp_path / "store"
+    shutil.copytree(src, store)  # the shared store stays as the other tests found it
+    n = N_FIRST + 1
+    reused_all = {"tables": {"computed": 0, "reused": n}, "embed": {"computed": 0, "reused": n},
+                  "score": {"computed": 0, "reused": 1}}
+
+    warm = run_json(inbox, store)
+    assert warm["stages"] == reused_all
+    assert warm["orchestrator"] == "none"  # nothing to compute: recorded without starting Prefect
+    assert warm["store_version"] == second["store_version"] + 1
+    assert Path(warm["report"]).is_file()
+    a = last_run_windows(store)
+    always = run_json(inbox, store, "--orchestrate", "always")
+    assert always["stages"] == reused_all and always["orchestrator"] == "prefect"
+
+    imu = run_json(inbox, store, "--rebuild", "imu")
+    assert imu["orchestrator"] == "prefect"
+    assert imu["stages"] == {"tables": {"computed": n, "reused": 0}, "embed": {"computed": 0, "reused": n},
+                             "score": {"computed": 1, "reused": 0}}
+    b = last_run_windows(store)
+    # Recomputed from the same inputs: the same scores (the rebuild overwrote its cache entries with equal ones).
+    np.testing.assert_allclose(b["score"].to_numpy(), a["score"].to_numpy(), rtol=0, atol=1e-9, equal_nan=True)
+
+    cam = run_json(inbox, store, "--rebuild", "camera")
+    assert cam["stages"]["embed"] == {"computed": n, "reused": 0} and cam["stages"]["tables"]["computed"] == 0
+
+    p = fleetsift("run", "--inbox", str(inbox), "--store", str(store), "--rebuild", "gps", ok=(1,))
+    assert "--rebuild" in p.stderr and "'gps'" in p.stderr and "imu" in p.stderr
 
 
 # --- 2. Dask runner -------------------------------------------------------------------------------------------------
@@ -323,3 +359,50 @@ def test_discover_skips_a_store_inside_the_inbox(tmp_path):
 def test_serve_without_a_server_explains_what_to_do(tmp_path):
     p = fleetsift("serve", "--inbox", str(tmp_path), "--store", str(tmp_path / "store"), ok=(2,), timeout=120)
     assert "PREFECT_API_URL" in p.stderr and "prefect-server.sh" in p.stderr
+
+
+def _table_fleet(root: Path, n: int = 4) -> Path:
+    """A video-free inbox of n IMU-like CSV recordings (30 s at 100 Hz), for in-process nights."""
+    rng = np.random.default_rng(5)
+    root.mkdir(parents=True)
+    (root / "profile.toml").write_text('[scoring]\nk = 2\nexclusion_s = 5.0\n[streams.imu]\nkind = "table"\n'
+                                       'file = "imu.csv"\nchannels = ["ax", "ay", "gz"]\n')
+    t = np.arange(0, 30, 0.01)
+    for i in range(n):
+        (root / f"rec-{i:02d}").mkdir()
+        x = rng.normal(0, 1, (len(t), 3)).cumsum(axis=0) * 0.05 + rng.normal(0, 0.2, (len(t), 3))
+        pd.DataFrame({"t": t, "ax": x[:, 0], "ay": x[:, 1], "gz": x[:, 2]}).to_csv(root / f"rec-{i:02d}" / "imu.csv",
+                                                                                 index=False)
+    return root
+
+
+def test_cached_only_night_writes_nothing_until_all_is_cached_and_follows_renames(tmp_path):
+    from fleetsift.store import Store
+    from flows import night
+    from tasks import stages
+
+    inbox, store = _table_fleet(tmp_path / "inbox"), str(tmp_path / "store")
+    direct = night.Steps(tables=stages.run_tables, embed=stages.run_embed, score=stages.run_score,
+                         write=stages.run_write)
+    with pytest.raises(night.NotCached):
+        night.run_night(night.CACHED_ONLY, str(inbox), store)
+    assert Store(store).version("runs") is None  # refused before any write
+    first = night.run_night(direct, str(inbox), store)
+    again = night.run_night(night.CACHED_ONLY, str(inbox), store)
+    assert again["stages"] == {"tables": {"computed": 0, "reused": 4}, "embed": {"computed": 0, "reused": 0},
+                               "score": {"computed": 0, "reused": 1}}
+    assert again["store_version"] == first["store_version"] + 1
+    w1 = Store(store).read("windows", run_id=first["run_id"]).drop(columns="run_id")
+    w2 = Store(store).read("windows", run_id=again["run_id"]).drop(columns="run_id")
+    pd.testing.assert_frame_equal(w1.sort_values(list(w1.columns[:4])).reset_index(drop=True),
+                                  w2.sort_values(list(w2.columns[:4])).reset_index(drop=True))
+    # A renamed recording keeps its cached tables (same content) but its scores must carry the new name.
+    (inbox / "rec-02").rename(inbox / "rec-20")
+    with pytest.raises(night.NotCached, match="fleet scores"):
+        night.run_night(night.CACHED_ONLY, str(inbox), store)
+    renamed = night.run_night(direct, str(inbox), store)
+    assert renamed["stages"]["tables"] == {"computed": 0, "reused": 4}
+    ids = set(Store(store).read("windows", run_id=renamed["run_id"])["recording_id"])
+    assert ids == {"rec-00", "rec-01", "rec-20", "rec-03"}
+    with pytest.raises(InputError, match="--rebuild"):
+        night.run_night(direct, str(inbox), store, rebuild=("camera",))

@@ -335,3 +335,31 @@ def test_report_of_a_real_run(tmp_path):
     print(f"report {report.stat().st_size} bytes for {len(by_name)} recordings, {len(doc.cards)} windows")
     assert report.stat().st_size < MAX_BYTES
     check_renders(report, tmp_path, tmp_path / "real.png")
+
+
+def test_report_body_is_reused_for_a_run_with_the_same_windows(tmp_path):
+    # A night with nothing new writes the same windows under a new run id: its report reuses the rendered body
+    # (thumbnails and plots) and differs from the last one only in the run id; a changed score renders anew.
+    st, run_id, w, inbox = make_store(tmp_path)
+    first = tmp_path / "first.html"
+    write_report(str(st.root), run_id, str(first))
+    cache = st.root / "cache" / "report"
+    assert len(list(cache.glob("*.html"))) == 1
+
+    def rerun(new_id: str, windows: pd.DataFrame) -> Path:
+        for table in ("recordings", "runs"):
+            df = st.read(table, run_id=run_id)
+            st.append(table, df.assign(run_id=new_id))
+        st.append("windows", windows.assign(run_id=new_id))
+        out = tmp_path / f"{new_id}.html"
+        write_report(str(st.root), new_id, str(out))
+        return out
+
+    same = rerun("20260102T020000Z-def456", w)
+    assert len(list(cache.glob("*.html"))) == 1
+    assert same.read_text().replace("20260102T020000Z-def456", run_id) == first.read_text()
+    changed = w.copy()
+    changed.loc[(changed["recording_id"] == "rover-b") & (changed["window_index"] == 4), "score"] *= 1.5
+    other = rerun("20260103T020000Z-0a1b2c", changed)
+    assert len(list(cache.glob("*.html"))) == 2
+    assert other.read_text().replace("20260103T020000Z-0a1b2c", run_id) != first.read_text()

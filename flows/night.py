@@ -1,0 +1,155 @@
+"""What runs when on a night: the wiring shared by the Prefect flow (flows/nightly.py) and the direct path.
+
+No Prefect import here. The flow passes its tasks as `steps`; `CACHED_ONLY` passes the plain stage functions with
+`cached_only=True`, which raise `NotCached` before computing anything, so a night whose every output is already
+in the cache can be run and recorded without starting an orchestrator (see flows.cli.do_run).
+"""
+
+from __future__ import annotations
+
+import time
+import uuid
+from dataclasses import dataclass
+from datetime import datetime, timezone
+from functools import partial
+from pathlib import Path
+from typing import Any, Callable
+
+from fleetsift import __version__
+from fleetsift.errors import InputError
+from fleetsift.profile import PROFILE_NAME, Profile, load_profile, profile_for
+from fleetsift.store import Store
+from tasks import stages
+from tasks.stages import NotCached  # noqa: F401 -- raised through run_night by CACHED_ONLY
+
+
+@dataclass(frozen=True)
+class Steps:
+    """The stage callables a night calls: Prefect tasks (with .submit for parallel runners) or plain functions."""
+
+    tables: Callable[..., dict]
+    embed: Callable[..., dict]
+    score: Callable[..., dict]
+    write: Callable[..., dict]
+
+
+CACHED_ONLY = Steps(tables=partial(stages.run_tables, cached_only=True),
+                    embed=partial(stages.run_embed, cached_only=True),
+                    score=partial(stages.run_score, cached_only=True), write=stages.run_write)
+
+
+def _is_store(p: Path) -> bool:
+    # A store inside the inbox has its cache folders (Store.init) before its first table exists, so the runs
+    # table alone would not reveal it on the first night.
+    return ((p / "_delta_log").exists() or (p / "runs" / "_delta_log").exists() or (p / ".lock").exists()
+            or ((p / "cache" / "tables").is_dir() and (p / "baselines").is_dir()))
+
+
+def discover(inbox: Path) -> list[Path]:
+    """Every sub-folder of the inbox is a recording (hidden ones and the store, if inside, are skipped)."""
+    if not inbox.is_dir():
+        raise InputError(inbox, "inbox", "a folder of recording folders", "no such folder")
+    return sorted(p for p in inbox.iterdir() if p.is_dir() and not p.name.startswith((".", "_"))
+                  and not _is_store(p))
+
+
+def new_run_id() -> str:
+    return datetime.now(timezone.utc).strftime("%Y%m%dT%H%M%SZ") + "-" + uuid.uuid4().hex[:6]
+
+
+def fleet_profile(inbox: Path, profile_path: str | None) -> Profile:
+    if profile_path:
+        return load_profile(profile_path)
+    return load_profile(inbox / PROFILE_NAME)
+
+
+STAGES = ("tables", "embed", "score")
+
+
+def rebuild_plan(fleet: Profile, rebuild: tuple[str, ...]) -> dict[str, Any]:
+    """What `--rebuild NAME ...` forces: a stage (tables, embed, score) or a stream's branch; the scores always
+    follow what they depend on."""
+    names = set(STAGES) | set(fleet.streams)
+    for n in rebuild:
+        if n not in names:
+            raise InputError(fleet.path, "--rebuild", f"a stage {list(STAGES)} or a stream {sorted(fleet.streams)}",
+                             repr(n))
+    tables = "tables" in rebuild or any(s.name in rebuild for s in fleet.table_streams())
+    embed = tuple(s.name for s in fleet.video_streams() if "embed" in rebuild or s.name in rebuild)
+    return {"tables": tables, "embed": embed, "score": bool(rebuild)}
+
+
+def run_night(steps: Steps, inbox: str, store: str, profile_path: str | None = None, run_id: str | None = None,
+              parallel: bool = False, progress: bool = True, rebuild: tuple[str, ...] = ()) -> dict[str, Any]:
+    """Score every recording in the inbox against the fleet's baseline and append the run to the store.
+
+    `rebuild` names stages or streams whose cached outputs are recomputed on purpose (see rebuild_plan).
+    """
+    started = time.time()
+    run_id = run_id or new_run_id()
+    st = Store(store).init()
+    inbox_p = Path(inbox).resolve()
+    fleet = fleet_profile(inbox_p, profile_path)
+    force = rebuild_plan(fleet, tuple(rebuild))
+    recs = discover(inbox_p)
+
+    rec_rows: dict[str, dict] = {}
+    jobs: list[tuple[str, Profile]] = []
+    for rec in recs:
+        try:
+            prof = profile_for(rec, fleet)
+        except InputError as e:
+            rec_rows[rec.name] = {"recording_id": rec.name, "content_hash": "", "duration_s": None,
+                                  "status": "quarantined", "reason": str(e)}
+            continue
+        # Windowing, descriptor and scoring are the fleet's; a recording's own profile may only re-describe streams.
+        jobs.append((str(rec), Profile(path=prof.path, streams=prof.streams, windowing=fleet.windowing,
+                                       descriptor=fleet.descriptor, scoring=fleet.scoring, baseline=fleet.baseline)))
+
+    if parallel:
+        tab_f = [steps.tables.submit(r, p, str(st.root), force=force["tables"]) for r, p in jobs]
+        emb_f = [steps.embed.submit(r, p, str(st.root), False, force_streams=force["embed"]) for r, p in jobs]
+        tabs = [f.result() for f in tab_f]
+        embs = [f.result() for f in emb_f]
+    else:
+        tabs = [steps.tables(r, p, str(st.root), force=force["tables"]) for r, p in jobs]
+        embs = [steps.embed(r, p, str(st.root), progress, force_streams=force["embed"]) for r, p in jobs]
+
+    prepared = []
+    stats = {"tables": {"computed": 0, "reused": 0}, "embed": {"computed": 0, "reused": 0},
+             "score": {"computed": 0, "reused": 0}}
+    for (rec, prof), tab, emb in zip(jobs, tabs, embs):
+        name = Path(rec).name
+        if tab["status"] == "ok":
+            stats["tables"]["reused" if tab["reused"] else "computed"] += 1
+        if emb["status"] == "ok":
+            stats["embed"]["reused"] += emb["reused"]
+            stats["embed"]["computed"] += emb["computed"]
+        if tab["status"] == "ok" and tab["duration_s"] < fleet.windowing.window_s:
+            tab = {"status": "quarantined", "content": tab["content"], "duration_s": tab["duration_s"],
+                   "reason": f"{rec}: windowing.window_s: expected a recording at least one window "
+                             f"({fleet.windowing.window_s:g} s) long, got {tab['duration_s']:.3g} s"}
+        bad = next((x for x in (tab, emb) if x["status"] != "ok"), None)
+        if bad is not None:
+            rec_rows[name] = {"recording_id": name, "content_hash": tab.get("content", ""),
+                              "duration_s": tab.get("duration_s"), "status": "quarantined", "reason": bad["reason"]}
+            continue
+        prepared.append({"tables": tab, "embed": emb})
+        rec_rows[name] = {"recording_id": name, "content_hash": tab["content"], "duration_s": tab["duration_s"],
+                          "status": "scored", "reason": ""}
+
+    score = None
+    if prepared:
+        try:
+            score = steps.score(prepared, fleet, str(st.root), run_id, force=force["score"])
+            stats["score"]["reused" if score["reused"] else "computed"] += 1
+        except ValueError as e:
+            # A fleet-level failure (e.g. channels differing between recordings): nothing scored, reason kept.
+            for p in prepared:
+                rid = p["tables"]["recording_id"]
+                rec_rows[rid].update(status="quarantined", reason=f"fleet scoring: {e}")
+    rows = [rec_rows[k] for k in sorted(rec_rows)]
+    written = steps.write(str(st.root), run_id, started, fleet, __version__, rows, score, str(inbox_p))
+    return {"run_id": run_id, "store": str(st.root), "store_version": written["version"],
+            "windows_version": written["windows_version"], "score": score, "recordings": rows, "stages": stats,
+            "profile": fleet.path, "elapsed_s": round(time.time() - started, 2)}
