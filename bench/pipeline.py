@@ -7,6 +7,8 @@ On one generated demo fleet (warehouse rovers) this times, in order:
   cold   `fleetsift run` on a fresh store (decode, embed, resample, fit the baseline, score, write, report)
   warm   the same command again, nothing changed (every stage output reused)
   imu    after editing one IMU calibration bias in the inbox profile (tables + scoring re-run, video reused)
+  imu+srv  another bias edit, run against a running local Prefect server (scripts/prefect-server.sh), as the
+         scheduled deployment runs: the same work without the temporary server's start-up
   floor  decode + embed of the same sampled frames alone (featurizers.video.iter_frames + featurizers.embed),
          in this process with the profile's backbone settings; the backbone load is timed separately
 Each run is a fresh `fleetsift run --json` process, as a nightly scheduler starts it: "wall" includes Python and
@@ -21,6 +23,7 @@ import json
 import os
 import re
 import shutil
+import signal
 import subprocess
 import sys
 import tempfile
@@ -34,10 +37,12 @@ _PREFECT_VARS = ("PREFECT_HOME", "PREFECT_API_URL", "PREFECT_API_DATABASE_CONNEC
                  "PREFECT_LOCAL_STORAGE_PATH", "PREFECT_PROFILE")
 
 
-def run_cli(inbox: Path, store: Path) -> tuple[dict, float]:
-    """One `fleetsift run --json` in a child process: (its JSON, wall seconds)."""
+def run_cli(inbox: Path, store: Path, api: str | None = None) -> tuple[dict, float]:
+    """One `fleetsift run --json` in a child process: (its JSON, wall seconds); `api` = a running Prefect server."""
     env = {k: v for k, v in os.environ.items() if k not in _PREFECT_VARS}
     env.update(PREFECT_SERVER_ANALYTICS_ENABLED="false", PREFECT_SERVER_EPHEMERAL_STARTUP_TIMEOUT_SECONDS="180")
+    if api:
+        env["PREFECT_API_URL"] = api
     t0 = time.perf_counter()
     p = subprocess.run([sys.executable, "-m", "flows.cli", "run", "--inbox", str(inbox), "--store", str(store),
                         "--json"], capture_output=True, text=True, env=env, cwd=ROOT)
@@ -45,6 +50,32 @@ def run_cli(inbox: Path, store: Path) -> tuple[dict, float]:
     if p.returncode not in (0, 3):
         sys.exit(f"fleetsift run exited {p.returncode}:\n{p.stderr[-4000:]}")
     return json.loads(p.stdout), wall
+
+
+def start_server(store: Path) -> tuple[subprocess.Popen, str]:
+    """scripts/prefect-server.sh on a free port (as a team running `fleetsift serve` has); waits for /health."""
+    import socket
+    import urllib.request
+
+    with socket.socket() as sock:
+        sock.bind(("127.0.0.1", 0))
+        port = sock.getsockname()[1]
+    env = {k: v for k, v in os.environ.items() if k not in _PREFECT_VARS}
+    env["PREFECT"] = str(Path(sys.executable).parent / "prefect")
+    proc = subprocess.Popen(["bash", str(ROOT / "scripts" / "prefect-server.sh"), str(store), str(port)], env=env,
+                            stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL, start_new_session=True)
+    api = f"http://127.0.0.1:{port}/api"
+    deadline = time.monotonic() + 180
+    while time.monotonic() < deadline:
+        try:
+            with urllib.request.urlopen(f"{api}/health", timeout=5) as r:
+                if r.status == 200:
+                    return proc, api
+        except OSError:
+            pass
+        time.sleep(0.5)
+    proc.kill()
+    sys.exit("the local Prefect server did not answer /health within 180 s")
 
 
 def change_imu_bias(profile: Path, channel: str = "ax", bias: float = 0.05) -> None:
@@ -115,12 +146,20 @@ def main() -> None:
         res["warm"] = run_cli(inbox, store)
         change_imu_bias(inbox / "profile.toml")
         res["imu"] = run_cli(inbox, store)
+        # The same change against a running server, as nightly deployments run: no temporary server to start.
+        server, api = start_server(store)
+        try:
+            change_imu_bias(inbox / "profile.toml", bias=0.07)
+            res["imu+srv"] = run_cli(inbox, store, api)
+        finally:
+            os.killpg(server.pid, signal.SIGTERM)
+            server.wait(timeout=60)
         fl = floor(inbox, names)
         print(f"load average at end:   {' '.join(f'{x:.2f}' for x in os.getloadavg())}")
 
         recorded = sum(r.get("duration_s") or 0.0 for r in res["cold"][0]["recordings"])
         print(f"\n{'run':<6} {'wall s':>8} {'flow s':>8}  stages (computed c / reused r)")
-        for k in ("cold", "warm", "imu"):
+        for k in ("cold", "warm", "imu", "imu+srv"):
             out, wall = res[k]
             print(f"{k:<6} {wall:>8.1f} {out['elapsed_s']:>8.1f}  {stages(out)}")
         print(f"{'floor':<6} {fl['seconds']:>8.1f} {'':>8}  decode + embed of {fl['frames']} sampled frames "
@@ -130,6 +169,8 @@ def main() -> None:
         print("\nratios (wall | flow)")
         print(f"  warm / cold   {res['warm'][1] / cw:6.3f} | {res['warm'][0]['elapsed_s'] / cf:6.3f}")
         print(f"  imu  / cold   {res['imu'][1] / cw:6.3f} | {res['imu'][0]['elapsed_s'] / cf:6.3f}")
+        print(f"  imu+srv / cold {res['imu+srv'][1] / cw:5.3f} | {res['imu+srv'][0]['elapsed_s'] / cf:6.3f}"
+              "   (against a running Prefect server)")
         print(f"  cold / floor  {cw / fl['seconds']:6.2f} | {cf / fl['seconds']:6.2f}")
         print(f"real-time factor (recorded {recorded:.0f} s / cold wall {cw:.1f} s): {recorded / cw:.1f}x"
               f"  (flow only: {recorded / cf:.1f}x)")
@@ -137,7 +178,9 @@ def main() -> None:
         # The cache contract this benchmark relies on: if it is broken, the ratios mean something else.
         ok = (res["warm"][0]["stages"]["embed"]["computed"] == 0 and res["warm"][0]["stages"]["tables"]["computed"] == 0
               and res["imu"][0]["stages"]["embed"]["computed"] == 0
-              and res["imu"][0]["stages"]["tables"]["computed"] == len(names))
+              and res["imu"][0]["stages"]["tables"]["computed"] == len(names)
+              and res["imu+srv"][0]["stages"]["embed"]["computed"] == 0
+              and res["imu+srv"][0]["stages"]["tables"]["computed"] == len(names))
         if not ok:
             print("warning: stage reuse differs from the expected pattern (warm: all reused; imu: tables "
                   "recomputed, video reused); a source edit during the benchmark also changes the cache keys")
