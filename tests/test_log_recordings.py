@@ -3,7 +3,7 @@
 import numpy as np
 import pytest
 
-from fleetsift.profile import parse_profile
+from fleetsift.profile import parse_profile, profile_for
 from tasks import stages
 
 CSV_PROFILE = """
@@ -19,22 +19,6 @@ file = "camera.mp4"
 clock_offset_s = -0.35
 """
 
-BAG_PROFILE = """
-[windowing]
-rate_hz = 50.0
-[streams.imu]
-kind = "table"
-file = "bag"
-topic = "/imu"
-channels = ["linear_acceleration.x", "linear_acceleration.y", "linear_acceleration.z",
-            "angular_velocity.x", "angular_velocity.y", "angular_velocity.z"]
-[streams.camera]
-kind = "video"
-file = "bag"
-topic = "/camera/image/compressed"
-clock_offset_s = -0.35
-"""
-
 
 @pytest.mark.slow
 @pytest.mark.parametrize("storage", ["mcap", "sqlite3"])
@@ -47,11 +31,15 @@ def test_bag_recording_matches_csv_and_video(tmp_path, storage):
     bag_rec = tmp_path / "bags" / name
     bag_rec.mkdir(parents=True)
     demo_bag.recording_to_bag(rec, bag_rec / "bag", storage=storage, image_hz=5.0)
+    # The bag recording's own profile is the one the demo writes, laid over the CSV fleet's.
+    (bag_rec / "profile.toml").write_text(demo_bag.BAG_PROFILE)
     store = str(tmp_path / "store")
 
-    csv_p, bag_p = parse_profile(CSV_PROFILE), parse_profile(BAG_PROFILE)
+    csv_p = parse_profile(CSV_PROFILE)
+    bag_p = profile_for(bag_rec, csv_p)
     t_csv, t_bag = stages.run_tables(str(rec), csv_p, store), stages.run_tables(str(bag_rec), bag_p, store)
     assert t_csv["status"] == t_bag["status"] == "ok", (t_csv, t_bag)
+    assert t_bag["channels"] == t_csv["channels"] == ["ax", "ay", "az", "gx", "gy", "gz"]
     a, b = (stages.Store.load_arrays(x["path"]) for x in (t_csv, t_bag))
     np.testing.assert_allclose(a["t"], b["t"], atol=1e-6)
     np.testing.assert_allclose(a["values"], b["values"], atol=1e-6)  # ROS time is whole nanoseconds
