@@ -6,31 +6,16 @@ the bag with rosbags' own writer (fleetsift.demo_bag.recording_to_bag). Every ru
 
 from __future__ import annotations
 
-import json
-import os
 import struct
-import subprocess
-import sys
 from pathlib import Path
 
 import numpy as np
 import pandas as pd
 import pytest
-from ulog_spec import ULogWriter  # tests/ is on sys.path under pytest
+from cli_run import run_json  # tests/ is on sys.path under pytest
+from ulog_spec import ULogWriter
 
-ROOT = Path(__file__).resolve().parent.parent
 pytestmark = [pytest.mark.slow, pytest.mark.timeout(1200)]
-_PREFECT_VARS = ("PREFECT_HOME", "PREFECT_API_URL", "PREFECT_API_DATABASE_CONNECTION_URL",
-                 "PREFECT_LOCAL_STORAGE_PATH", "PREFECT_PROFILE")
-
-
-def run_json(inbox: Path, store: Path) -> dict:
-    env = {k: v for k, v in os.environ.items() if k not in _PREFECT_VARS}
-    env.update(PREFECT_SERVER_ANALYTICS_ENABLED="false", PREFECT_SERVER_EPHEMERAL_STARTUP_TIMEOUT_SECONDS="180")
-    p = subprocess.run([sys.executable, "-m", "flows.cli", "run", "--inbox", str(inbox), "--store", str(store),
-                        "--json"], capture_output=True, text=True, env=env, cwd=ROOT, timeout=1100)
-    assert p.returncode == 0, f"exit {p.returncode}\nstdout:\n{p.stdout[-3000:]}\nstderr:\n{p.stderr[-3000:]}"
-    return json.loads(p.stdout)
 
 
 def windows(store: Path, run_id: str, metric: str = "riemann") -> pd.DataFrame:

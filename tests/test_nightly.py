@@ -8,7 +8,6 @@ process, as an operator or a scheduler would.
 from __future__ import annotations
 
 import json
-import os
 import re
 import shutil
 import signal
@@ -23,6 +22,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 import pytest
+from cli_run import cli_env, fleetsift, run_json  # tests/ is on sys.path under pytest
 
 from fleetsift.errors import InputError
 
@@ -30,31 +30,6 @@ ROOT = Path(__file__).resolve().parent.parent
 BIN = Path(sys.executable).parent
 N_FIRST = 3  # recordings of the first night; one more arrives for the second
 DURATION_S = 20
-
-# Prefect settings of whoever runs the tests must not leak into the runs (each store keeps its own Prefect state).
-_PREFECT_VARS = ("PREFECT_HOME", "PREFECT_API_URL", "PREFECT_API_DATABASE_CONNECTION_URL",
-                 "PREFECT_LOCAL_STORAGE_PATH", "PREFECT_PROFILE")
-
-
-def _env(**extra: str) -> dict:
-    env = {k: v for k, v in os.environ.items() if k not in _PREFECT_VARS}
-    env.update(PREFECT_SERVER_ANALYTICS_ENABLED="false", PREFECT_SERVER_EPHEMERAL_STARTUP_TIMEOUT_SECONDS="180",
-               PYTHONUNBUFFERED="1", **extra)
-    return env
-
-
-def fleetsift(*args: str, ok=(0,), timeout: float = 900, env: dict | None = None) -> subprocess.CompletedProcess:
-    p = subprocess.run([sys.executable, "-m", "flows.cli", *args], capture_output=True, text=True,
-                       env=env or _env(), cwd=ROOT, timeout=timeout)
-    if p.returncode not in ok:
-        raise AssertionError(f"fleetsift {' '.join(args)} exited {p.returncode}\nstdout:\n{p.stdout[-4000:]}\n"
-                             f"stderr:\n{p.stderr[-4000:]}")
-    return p
-
-
-def run_json(inbox: Path, store: Path, *extra: str) -> dict:
-    p = fleetsift("run", "--inbox", str(inbox), "--store", str(store), "--json", *extra)
-    return json.loads(p.stdout)
 
 
 def last_run_windows(store: Path) -> pd.DataFrame:
@@ -235,12 +210,12 @@ def test_serve_schedules_and_a_triggered_run_lands_in_the_store(pool, tmp_path):
     store = tmp_path / "store"  # the Prefect server keeps its state here too (store/prefect/server.db)
     port = _free_port()
     api = f"http://127.0.0.1:{port}/api"
-    env = _env(PREFECT_API_URL=api, PREFECT=str(BIN / "prefect"))
+    env = cli_env(PREFECT_API_URL=api, PREFECT=str(BIN / "prefect"))
     server_log, serve_log = tmp_path / "server.log", tmp_path / "serve.log"
     procs: dict[str, tuple[subprocess.Popen, Path]] = {}
     with open(server_log, "w") as so, open(serve_log, "w") as se:
         server = subprocess.Popen(["bash", str(ROOT / "scripts" / "prefect-server.sh"), str(store), str(port)],
-                                  stdout=so, stderr=subprocess.STDOUT, env=_env(PREFECT=str(BIN / "prefect")),
+                                  stdout=so, stderr=subprocess.STDOUT, env=cli_env(PREFECT=str(BIN / "prefect")),
                                   cwd=tmp_path)
         procs["prefect server"] = (server, server_log)
         try:
