@@ -18,7 +18,7 @@ import numpy as np
 import torch
 
 sys.path.insert(0, os.path.dirname(os.path.dirname(os.path.abspath(__file__))))
-from featurizers.embed import load_backbone  # noqa: E402
+from fleetsift.featurizers.embed import load_backbone  # noqa: E402
 
 
 def rate(bb, frames: np.ndarray, threads: int, min_seconds: float) -> float:

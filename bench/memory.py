@@ -5,8 +5,8 @@ Run: .venv/bin/python bench/memory.py [--minutes 5 30] [--fps 10] [--batch 8] [-
 For each length a 1280x720 MPEG-4 video with a simple moving pattern is generated once with PyAV and cached under
 /tmp/fleetsift-bench/. Each measurement runs in a fresh subprocess (so one peak cannot hide in another) and reports
 resource.getrusage(RUSAGE_SELF).ru_maxrss, the kernel's high-water mark of the process's resident set:
-  decode        featurizers.video.iter_frames(path, 5 Hz), frames dropped as they come
-  decode+embed  embed.embed_frames(video.iter_frames(path, 5 Hz), Lite0 backbone) -- what tasks.stages.run_embed does
+  decode        fleetsift.featurizers.video.iter_frames(path, 5 Hz), frames dropped as they come
+  decode+embed  embed.embed_frames(video.iter_frames(path, 5 Hz), Lite0 backbone) -- what tasks/stages.py run_embed does
 The RSS right after the imports (and, for embed, the model load) is printed too, so the workload's own share shows.
 Target: peaks flat in the video's length and under 1.5 GiB.
 """
@@ -32,7 +32,7 @@ def make_video(minutes: float, fps: float) -> Path:
     import numpy as np
 
     sys.path.insert(0, str(ROOT))
-    from featurizers.video import write_video
+    from fleetsift.demo.video import write_video
 
     CACHE.mkdir(parents=True, exist_ok=True)
     path = CACHE / f"long-{minutes:g}min-{W}x{H}-{fps:g}fps-mpeg4.mp4"
@@ -71,10 +71,10 @@ mode, path, sample_hz, batch, threads = sys.argv[2], sys.argv[3], float(sys.argv
 def rss_now_mib():
     with open("/proc/self/statm") as f:
         return int(f.read().split()[1]) * resource.getpagesize() / 2**20
-from featurizers import video
+from fleetsift.featurizers import video
 bb = None
 if mode == "embed":
-    from featurizers import embed
+    from fleetsift.featurizers import embed
     bb = embed.load_backbone(threads=threads)
 ready = rss_now_mib()
 t0 = time.perf_counter()

@@ -9,7 +9,7 @@ On one generated demo fleet (warehouse rovers) this times, in order:
   imu    after editing one IMU calibration bias in the inbox profile (tables + scoring re-run, video reused)
   imu+srv  another bias edit, run against a running local Prefect server (scripts/prefect-server.sh), as the
          scheduled deployment runs: the same work without the temporary server's start-up
-  floor  decode + embed of the same sampled frames alone (featurizers.video.iter_frames + featurizers.embed),
+  floor  decode + embed of the same sampled frames alone (featurizers/video.py iter_frames + embed.py),
          in this process with the profile's backbone settings; the backbone load is timed separately
 Each run is a fresh `fleetsift run --json` process, as a nightly scheduler starts it: "wall" includes Python and
 Prefect start-up (the embedded temporary server), "flow" is the flow's own elapsed time from the JSON. Ratios are
@@ -44,8 +44,8 @@ def run_cli(inbox: Path, store: Path, api: str | None = None) -> tuple[dict, flo
     if api:
         env["PREFECT_API_URL"] = api
     t0 = time.perf_counter()
-    p = subprocess.run([sys.executable, "-m", "flows.cli", "run", "--inbox", str(inbox), "--store", str(store),
-                        "--json"], capture_output=True, text=True, env=env, cwd=ROOT)
+    p = subprocess.run([sys.executable, "-m", "fleetsift.flows.cli", "run", "--inbox", str(inbox), "--store",
+                        str(store), "--json"], capture_output=True, text=True, env=env, cwd=ROOT)
     wall = time.perf_counter() - t0
     if p.returncode not in (0, 3):
         sys.exit(f"fleetsift run exited {p.returncode}:\n{p.stderr[-4000:]}")
@@ -91,7 +91,7 @@ def change_imu_bias(profile: Path, channel: str = "ax", bias: float = 0.05) -> N
 def floor(inbox: Path, names: list[str]) -> dict:
     """Decode + embed the sampled frames of every recording's video streams, nothing else."""
     from fleetsift.profile import load_profile
-    from featurizers import embed, video
+    from fleetsift.featurizers import embed, video
 
     prof = load_profile(inbox / "profile.toml")
     streams = prof.video_streams()
@@ -129,7 +129,7 @@ def main() -> None:
     n = a.recordings or (4 if a.quick else 8)
     secs = a.seconds or (30.0 if a.quick else 120.0)
 
-    from fleetsift.demo_fleet import make_fleet
+    from fleetsift.demo.fleet import make_fleet
 
     work = Path(a.workdir) if a.workdir else Path(tempfile.mkdtemp(prefix="fleetsift-bench-"))
     work.mkdir(parents=True, exist_ok=True)

@@ -24,7 +24,8 @@ import numpy as np
 
 sys.path.insert(0, os.path.dirname(os.path.dirname(os.path.abspath(__file__))))
 
-from featurizers import spd  # noqa: E402
+from fleetsift.scoring import geometry  # noqa: E402
+from fleetsift.scoring.index import knn  # noqa: E402
 
 warnings.filterwarnings("ignore", category=DeprecationWarning)
 
@@ -77,13 +78,13 @@ def bench_one(n, d, k, kind, seed, full_max, subset, pr_pairwise):
 
     # fleetsift exact pairwise (same subset rule) and exact kNN (always all n queries).
     if full:
-        Df, t_fs_pw = timed(spd.pairwise_distance, X, None, "riemann")
+        Df, t_fs_pw = timed(geometry.pairwise_distance, X, None, "riemann")
         Df = Df[rows]
     else:
-        Df, t_sub = timed(spd.pairwise_distance, X[rows], X, "riemann")
+        Df, t_sub = timed(geometry.pairwise_distance, X[rows], X, "riemann")
         t_fs_pw = t_sub * fs_full_pairs / sub_pairs
     ex = np.eye(n, dtype=bool)
-    (fd, fi), t_fs_knn = timed(spd.knn, X, X, k, "riemann", ex)
+    (fd, fi), t_fs_knn = timed(knn, X, X, k, "riemann", ex)
 
     Dp_chk = Dp.copy()
     Dp_chk[np.arange(len(rows)), rows] = 0.0
@@ -99,8 +100,8 @@ def bench_one(n, d, k, kind, seed, full_max, subset, pr_pairwise):
           f"{100 * same_idx:.2f}%  (on {len(rows)} rows)")
 
     # Log-Euclidean throughput (exact pairwise and kNN, all n).
-    _, t_le_pw = timed(spd.pairwise_distance, X, None, "logeuclid")
-    _, t_le_knn = timed(spd.knn, X, X, k, "logeuclid", ex)
+    _, t_le_pw = timed(geometry.pairwise_distance, X, None, "logeuclid")
+    _, t_le_knn = timed(knn, X, X, k, "logeuclid", ex)
     print(f"logeuclid  pairwise {t_le_pw:6.2f} s ({fs_full_pairs / t_le_pw / 1e6:.1f} M pairs/s)   "
           f"kNN {t_le_knn:6.2f} s ({n / t_le_knn:.0f} queries/s)")
     return dict(n=n, kind=kind, t_pr_knn=t_pr_knn, t_fs_knn=t_fs_knn, knn_diff=knn_diff, pw_diff=pw_diff)

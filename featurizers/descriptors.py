@@ -15,7 +15,7 @@ __all__ = ["KINDS", "ledoit_wolf", "oas", "rbf_kernel_matrix", "lagged_covarianc
            "gaussian_embedding", "describe"]
 
 KINDS = ("ledoit_wolf", "oas", "rbf", "lagged")
-_SRC = "featurizers.descriptors"
+_SRC = "fleetsift.featurizers.descriptors"
 
 
 def _windows(X, min_samples: int = 1) -> np.ndarray:

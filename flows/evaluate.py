@@ -7,7 +7,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from featurizers.evaluation import (hanley_mcneil_se, label_windows, outlier_baselines, read_labels, roc_auc,
+from fleetsift.scoring.evaluation import (hanley_mcneil_se, label_windows, outlier_baselines, read_labels, roc_auc,
                                     roc_curve, tangent_vectors)
 from fleetsift.errors import InputError
 from fleetsift.profile import Profile
@@ -27,12 +27,12 @@ def prepare(inbox: str, store: str, profile_path: str | None = None, progress: b
     [{"recording_id", "reason"}]). ``tables_fn``/``embed_fn`` default to the plain stage functions; a flow passes
     its Prefect tasks. The per-recording profile is merged exactly as the nightly flow does.
     """
-    from flows import env
+    from fleetsift.flows import env
 
     env.configure(store)  # the stage modules import Prefect, which reads its settings at import time
     from fleetsift.profile import profile_for
-    from flows.night import discover, fleet_profile
-    from tasks import stages
+    from fleetsift.flows.night import discover, fleet_profile
+    from fleetsift.tasks import stages
 
     tables_fn = tables_fn or stages.run_tables
     embed_fn = embed_fn or stages.run_embed
@@ -58,7 +58,7 @@ def prepare(inbox: str, store: str, profile_path: str | None = None, progress: b
 
 def run_descriptors(store: str, run_id: str, inbox: str, profile_path: str | None = None) -> dict:
     """The run's window descriptors (recomputed from the cache with the run's baseline), or the reason why not."""
-    from tasks import stages
+    from fleetsift.tasks import stages
 
     fleet, prepared, _ = prepare(inbox, store, profile_path)
     if not prepared:

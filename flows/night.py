@@ -2,7 +2,7 @@
 
 No Prefect import here. The flow passes its tasks as `steps`; `CACHED_ONLY` passes the plain stage functions with
 `cached_only=True`, which raise `NotCached` before computing anything, so a night whose every output is already
-in the cache can be run and recorded without starting an orchestrator (see flows.cli.do_run).
+in the cache can be run and recorded without starting an orchestrator (see fleetsift.flows.cli.do_run).
 """
 
 from __future__ import annotations
@@ -19,8 +19,8 @@ from fleetsift import __version__
 from fleetsift.errors import InputError
 from fleetsift.profile import PROFILE_NAME, Profile, load_profile, profile_for
 from fleetsift.store import Store
-from tasks import stages
-from tasks.stages import NotCached  # noqa: F401 -- raised through run_night by CACHED_ONLY
+from fleetsift.tasks import stages
+from fleetsift.tasks.stages import NotCached  # noqa: F401 -- raised through run_night by CACHED_ONLY
 
 
 @dataclass(frozen=True)

@@ -5,8 +5,8 @@ from __future__ import annotations
 from prefect import flow
 
 from fleetsift.store import Store
-from flows.night import Steps, discover, fleet_profile, new_run_id, run_night  # noqa: F401 -- re-exported
-from tasks import flow_tasks
+from fleetsift.flows.night import Steps, discover, fleet_profile, new_run_id, run_night  # noqa: F401 -- re-exported
+from fleetsift.tasks import flow_tasks
 
 PREFECT_STEPS = Steps(tables=flow_tasks.tables_task, embed=flow_tasks.embed_task, score=flow_tasks.score_task,
                       write=flow_tasks.write_task)
@@ -23,7 +23,7 @@ def nightly_flow(inbox: str, store: str, profile_path: str | None = None, run_id
 @flow(name="fleetsift-scheduled", log_prints=True)
 def scheduled_run(inbox: str, store: str, profile_path: str | None = None) -> dict:
     """What a scheduled deployment runs: the nightly flow under the store's write lock, plus the report."""
-    from flows.report import write_report
+    from fleetsift.flows.report import write_report
 
     st = Store(store).init()
     with st.lock(wait_s=3600):

@@ -126,12 +126,12 @@ class RecordingSource:
     """Lazy access to one recording folder's table streams and videos, on the common clock of the store."""
 
     def __init__(self, rec_dir: Path, profile):
-        from featurizers import recording
+        from fleetsift.featurizers import recording
 
         self.dir = rec_dir
         self.profile = profile
         self.tables = [recording.read_table_stream(rec_dir, s) for s in profile.table_streams()]
-        # Times in the store are seconds from the earliest sample of any table stream (featurizers.recording).
+        # Times in the store are seconds from the earliest sample of any table stream (fleetsift.featurizers.recording).
         self.t0 = min(float(tb.t[0]) for tb in self.tables)
 
     def traces(self, t_from: float, t_to: float) -> list[tuple[str, np.ndarray, np.ndarray]]:
@@ -147,7 +147,7 @@ class RecordingSource:
     def thumbnails(self, targets: list[float]) -> dict[str, list[np.ndarray | None]]:
         """Per video stream, the frame nearest each target time (seconds from the first sample), decoded in one
         sequential pass (seeking is slow with long keyframe intervals)."""
-        from featurizers import recording, video
+        from fleetsift.featurizers import recording, video
 
         out = {}
         for s in self.profile.video_streams():
@@ -155,7 +155,7 @@ class RecordingSource:
             # Common clock -> the stream's own clock: the fleet step adds clock_offset_s and subtracts t0.
             want = np.asarray(targets, float) + self.t0 - s.clock_offset_s
             if s.topic:
-                from featurizers import logs
+                from fleetsift.featurizers import logs
 
                 frames = logs.iter_bag_images(path, s.topic, 30.0, stamp=s.stamp)
                 size = None

@@ -21,7 +21,7 @@ def serve(inbox: str, store: str, cron: str, profile: str | None = None, name: s
               "`scripts/prefect-server.sh STORE` (local, state in the store) and export "
               "PREFECT_API_URL=http://127.0.0.1:4200/api, or point it at your team's server.", file=sys.stderr)
         return 2
-    from flows.nightly import scheduled_run
+    from fleetsift.flows.nightly import scheduled_run
 
     # Absolute paths: the deployment's runs may start in another working directory than this command.
     params = {"inbox": str(Path(inbox).resolve()), "store": str(Path(store).resolve()),

@@ -32,12 +32,12 @@ from prefect import flow, task, unmapped
 from prefect.cache_policies import NONE
 from prefect.task_runners import ThreadPoolTaskRunner
 
-from featurizers import fleet
-from featurizers.evaluation import hanley_mcneil_se, label_windows, read_labels, roc_auc
+from fleetsift.scoring import fleet
+from fleetsift.scoring.evaluation import hanley_mcneil_se, label_windows, read_labels, roc_auc
 from fleetsift.errors import InputError
 from fleetsift.profile import DESCRIPTOR_KINDS, METRICS, Profile
-from flows.evaluate import prepare
-from tasks import flow_tasks, stages
+from fleetsift.flows.evaluate import prepare
+from fleetsift.tasks import flow_tasks, stages
 
 PARAMS = ("window_s", "hop_s", "k", "kind", "metric", "ridge")
 DESIGNS = ("one_at_a_time", "full")
@@ -246,7 +246,7 @@ def sweep_flow(inbox: str, store: str, labels: str, grid_path: str | None = None
 def run_sweep(inbox: str, store: str, labels: str, grid_path: str | None = None, profile_path: str | None = None,
               out_dir: str | None = None, wait_s: float = 0.0) -> dict:
     """The sweep under the store's write lock (it may fill the stage cache)."""
-    from flows import env
+    from fleetsift.flows import env
 
     env.configure(store)
     from fleetsift.store import Store

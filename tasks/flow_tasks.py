@@ -1,12 +1,12 @@
 """Prefect tasks: thin wrappers around the stage functions of tasks/stages.py.
 
-Our own content-addressed keys do the caching (tasks.stages.stage_key), so Prefect's cache is off.
+Our own content-addressed keys do the caching (fleetsift.store.stage_key), so Prefect's cache is off.
 """
 
 from prefect import task
 from prefect.cache_policies import NONE
 
-from tasks import stages
+from fleetsift.tasks import stages
 
 tables_task = task(name="tables", cache_policy=NONE, persist_result=False)(stages.run_tables)
 embed_task = task(name="embed", cache_policy=NONE, persist_result=False)(stages.run_embed)

@@ -20,8 +20,9 @@ import pandas as pd
 from fleetsift.errors import InputError
 from fleetsift.profile import Profile, VideoStream
 from fleetsift.store import Store, code_version, stage_key
-from featurizers import descriptors, fleet, pca, recording, scoring, spd, tables, video, weights
-# featurizers.embed (torch, torchvision) is imported only where frames are embedded: a night that reuses every
+from fleetsift.featurizers import recording, video, weights
+from fleetsift.scoring import fleet
+# featurizers/embed.py (torch, torchvision) is imported only where frames are embedded: a night that reuses every
 # embedding never loads them.
 
 _BACKBONES: dict[tuple, Any] = {}
@@ -32,15 +33,16 @@ class NotCached(Exception):
 
 
 def _tables_version() -> str:
-    return code_version(tables, recording)
+    return code_version("fleetsift.featurizers.tables", "fleetsift.featurizers.recording")
 
 
 def _embed_version() -> str:
-    return code_version(video, "featurizers.embed", weights)
+    return code_version("fleetsift.featurizers.video", "fleetsift.featurizers.embed", "fleetsift.featurizers.weights")
 
 
 def _score_version() -> str:
-    return code_version(fleet, descriptors, scoring, spd, pca)
+    return code_version(*(f"fleetsift.scoring.{m}" for m in ("fleet", "baseline", "geometry", "index")),
+                        "fleetsift.featurizers.descriptors", "fleetsift.featurizers.pca")
 
 
 def recording_hash(store: Store, rec_dir: Path, files: list[Path]) -> str:
@@ -96,7 +98,7 @@ def run_tables(rec_dir: str, profile: Profile, store_root: str, cached_only: boo
 
 
 def _backbone(stream: VideoStream):
-    from featurizers import embed
+    from fleetsift.featurizers import embed
 
     key = (stream.backbone, stream.weights, stream.image_size, stream.threads)
     if key not in _BACKBONES:
@@ -107,7 +109,7 @@ def _backbone(stream: VideoStream):
 
 def _frames(path: Path, stream: VideoStream):
     if stream.topic:
-        from featurizers import logs
+        from fleetsift.featurizers import logs
 
         return logs.iter_bag_images(path, stream.topic, stream.sample_hz, stamp=stream.stamp)
     return video.iter_frames(path, stream.sample_hz)
@@ -153,7 +155,7 @@ def run_embed(rec_dir: str, profile: Profile, store_root: str, progress: bool = 
                     total = int(info.get("duration_s", 0) * stream.sample_hz) or None
                     bar = tqdm(total=total, desc=f"embed {rec_id}/{stream.name}", unit="frame", file=sys.stderr,
                                leave=False, mininterval=1.0)
-                from featurizers import embed
+                from fleetsift.featurizers import embed
 
                 t, e = embed.embed_frames(_frames(path, stream), bb, batch_size=stream.batch_size,
                                           progress=(_bar_to(bar) if bar is not None else None))
@@ -249,7 +251,7 @@ def run_descriptors(prepared: list[dict], profile: Profile, store_root: str, sco
     They are recomputed from the cached stage outputs with the run's stored baseline (standardisation and PCA),
     which is exactly how the fleet step described them; evaluation uses them for vector-space baselines.
     """
-    from featurizers.evaluation import window_descriptors
+    from fleetsift.scoring.evaluation import window_descriptors
 
     out = Path(score["path"]).with_suffix(".descriptors.npz")
     if out.exists():

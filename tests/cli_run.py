@@ -23,7 +23,7 @@ def cli_env(**extra: str) -> dict:
 
 
 def fleetsift(*args: str, ok=(0,), timeout: float = 900, env: dict | None = None) -> subprocess.CompletedProcess:
-    p = subprocess.run([sys.executable, "-m", "flows.cli", *args], capture_output=True, text=True,
+    p = subprocess.run([sys.executable, "-m", "fleetsift.flows.cli", *args], capture_output=True, text=True,
                        env=env or cli_env(), cwd=ROOT, timeout=timeout)
     if p.returncode not in ok:
         raise AssertionError(f"fleetsift {' '.join(args)} exited {p.returncode}\nstdout:\n{p.stdout[-4000:]}\n"

@@ -1,7 +1,7 @@
 """Bad input, one test per kind, at the level where it is handled.
 
 Featurizer functions raise `InputError(file, field, expected, got)`; the plain stage functions
-(`tasks.stages.run_tables` / `run_embed`) turn that into a `{"status": "quarantined", "reason": ...}` dict so a
+(`stages.run_tables` / `run_embed`) turn that into a `{"status": "quarantined", "reason": ...}` dict so a
 night goes on without the bad recording. Every check below asserts on all four parts of the message: the file, the
 field, what was expected and what was found.
 """
@@ -20,9 +20,11 @@ import pytest
 
 from fleetsift.errors import InputError, ProfileError
 from fleetsift.profile import Descriptor, Scoring, Windowing, load_profile, parse_profile, profile_for
-from featurizers import descriptors, fleet, video
-from featurizers.recording import common_clock, read_table_stream, resolve_stream_file
-from featurizers.tables import clean_table, cut_windows, read_table_file, window_starts
+from fleetsift.demo.video import write_video
+from fleetsift.featurizers import descriptors, video
+from fleetsift.featurizers.recording import common_clock, read_table_stream, resolve_stream_file
+from fleetsift.featurizers.tables import clean_table, cut_windows, read_table_file, window_starts
+from fleetsift.scoring import fleet
 
 RATE = 100.0  # Hz of the synthetic IMU tables
 CH = ("ax", "ay", "gz")
@@ -94,7 +96,7 @@ def read_err(path: Path, channels=CH, time_column="t") -> InputError:
 
 @pytest.fixture(scope="module")
 def stages():
-    from tasks import stages as st  # imports Prefect: once per module
+    from fleetsift.tasks import stages as st  # imports Prefect: once per module
 
     return st
 
@@ -495,7 +497,7 @@ def _frames(n=N_FRAMES, h=64, w=64):
 def videos(tmp_path_factory):
     d = tmp_path_factory.mktemp("videos")
     good = d / "good.mp4"
-    video.write_video(good, _frames(), FPS, codec="mpeg4")  # faststart: the index is at the front
+    write_video(good, _frames(), FPS, codec="mpeg4")  # faststart: the index is at the front
     data = good.read_bytes()
     out = {"good": good}
     for name, blob in {"truncated": data[: len(data) // 2], "header_only": data[: len(data) // 20],
@@ -518,7 +520,7 @@ def videos(tmp_path_factory):
 def test_truncated_video_yields_the_frames_before_the_cut(videos, caplog):
     full = list(video.iter_frames(videos["good"], 5.0))
     st: dict = {}
-    with caplog.at_level(logging.WARNING, logger="featurizers.video"):
+    with caplog.at_level(logging.WARNING, logger="fleetsift.featurizers.video"):
         part = list(video.iter_frames(videos["truncated"], 5.0, stats=st))
     assert 1 < len(part) < len(full)
     assert st["truncated"] and st["n_expected"] == N_FRAMES and st["n_lost"] == N_FRAMES - st["n_decoded"]

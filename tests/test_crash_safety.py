@@ -52,7 +52,7 @@ elif mode == "mid_commit":
                 os.kill(os.getpid(), signal.SIGSTOP)
             time.sleep(0.0002)
     threading.Thread(target=watch, daemon=True).start()
-from flows.cli import main
+from fleetsift.flows.cli import main
 sys.exit(main(sys.argv[4:]))
 """
 
@@ -69,7 +69,7 @@ def _popen(args: list[str], harness: tuple[str, str, Path] | None = None) -> sub
     if harness:
         cmd = [sys.executable, "-c", HARNESS, harness[0], harness[1], str(harness[2]), *args]
     else:
-        cmd = [sys.executable, "-m", "flows.cli", *args]
+        cmd = [sys.executable, "-m", "fleetsift.flows.cli", *args]
     # Output to files, not pipes: a killed run's helper (Prefect's temporary server) inherits the descriptors and
     # would hold a pipe open. Own session: the run and its helpers form one group, stopped by its id.
     out = tempfile.TemporaryFile(mode="w+")
@@ -188,7 +188,7 @@ def copy_store(src: Path, dst: Path) -> Path:
 
 @pytest.fixture(scope="module")
 def inbox(tmp_path_factory) -> Path:
-    from fleetsift.demo_fleet import make_fleet
+    from fleetsift.demo.fleet import make_fleet
 
     d = tmp_path_factory.mktemp("crash") / "inbox"
     names = make_fleet(d, n_recordings=N_REC, duration_s=20)
@@ -333,7 +333,7 @@ def test_two_concurrent_runs_one_refuses_neither_corrupts(complete_store, inbox,
     try:
         _wait_for(lambda: f"pid {a.pid} " in _lock_text(store), 300,
                   "the first run to take the store lock", proc=a)
-        b = subprocess.run([sys.executable, "-m", "flows.cli", *run_args(inbox, store)], cwd=ROOT, env=_env(),
+        b = subprocess.run([sys.executable, "-m", "fleetsift.flows.cli", *run_args(inbox, store)], cwd=ROOT, env=_env(),
                            capture_output=True, text=True, timeout=300)
         a_running = a.poll() is None
     finally:

@@ -10,8 +10,8 @@ import pandas as pd
 import pytest
 from scipy import signal
 
-from featurizers import video
-from fleetsift import demo_fleet
+from fleetsift.featurizers import video
+from fleetsift.demo import fleet as demo_fleet
 
 ROOT = Path(__file__).resolve().parent.parent
 SIZE = (96, 72)

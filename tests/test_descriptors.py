@@ -7,7 +7,7 @@ from sklearn.covariance import ledoit_wolf as sk_ledoit_wolf
 from sklearn.covariance import oas as sk_oas
 from sklearn.metrics.pairwise import rbf_kernel
 
-from featurizers import descriptors as de
+from fleetsift.featurizers import descriptors as de
 from fleetsift.errors import InputError
 
 

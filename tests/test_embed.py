@@ -9,7 +9,8 @@ import torch
 from torch import nn
 
 from fleetsift.errors import InputError
-from featurizers import embed as E
+from fleetsift.featurizers import embed as E
+from fleetsift.featurizers import pca, weights
 
 skimage_data = pytest.importorskip("skimage.data")
 
@@ -160,16 +161,16 @@ def test_pca_matches_sklearn_up_to_sign():
     rng = np.random.default_rng(2)
     X = rng.normal(size=(60, 12)) @ rng.normal(size=(12, 12)) + rng.normal(size=12)
     k = 5
-    ours = E.fit_pca(X, k)
+    ours = pca.fit_pca(X, k)
     ref = sklearn_decomposition.PCA(n_components=k, svd_solver="full").fit(X)  # scikit-learn reference
     signs = np.sign(np.sum(ours["components"] * ref.components_, axis=1))
     assert np.all(np.abs(signs) == 1)
     np.testing.assert_allclose(ours["components"] * signs[:, None], ref.components_, atol=1e-10)
     np.testing.assert_allclose(ours["explained_variance"], ref.explained_variance_, rtol=1e-10)
     np.testing.assert_allclose(ours["mean"], ref.mean_, atol=1e-12)
-    np.testing.assert_allclose(E.apply_pca(X, ours) * signs, ref.transform(X), atol=1e-9)
+    np.testing.assert_allclose(pca.apply_pca(X, ours) * signs, ref.transform(X), atol=1e-9)
     with pytest.raises(InputError):
-        E.fit_pca(X, 13)
+        pca.fit_pca(X, 13)
 
 
 def test_torchvision_backbone_from_state_dict_file(tmp_path):
@@ -192,7 +193,8 @@ def test_torchvision_backbone_from_state_dict_file(tmp_path):
     with torch.inference_mode():
         want = ref(bb.preprocess(frames)).numpy()
     np.testing.assert_allclose(bb.logits(frames), want, rtol=1e-4, atol=1e-4)
-    assert E.backbone_fingerprint("mobilenet_v3_small", path) == hashlib.sha256(path.read_bytes()).hexdigest()[:16]
+    want_fp = hashlib.sha256(path.read_bytes()).hexdigest()[:16]
+    assert weights.backbone_fingerprint("mobilenet_v3_small", path) == want_fp
 
 
 def test_resnet_head_split():
@@ -224,10 +226,10 @@ def test_bad_backbone_settings_raise_input_error(tmp_path):
 
 def test_fingerprint_is_sha256_prefix_and_tracks_content(tmp_path):
     path = E.lite0_weights_path()
-    fp = E.backbone_fingerprint("efficientnet_lite0")
+    fp = weights.backbone_fingerprint("efficientnet_lite0")
     assert fp == hashlib.sha256(path.read_bytes()).hexdigest()[:16] and len(fp) == 16
     other = tmp_path / "w.pth"
     other.write_bytes(b"a")
-    first = E.backbone_fingerprint("efficientnet_lite0", other)
+    first = weights.backbone_fingerprint("efficientnet_lite0", other)
     other.write_bytes(b"bb")
-    assert E.backbone_fingerprint("efficientnet_lite0", other) != first
+    assert weights.backbone_fingerprint("efficientnet_lite0", other) != first

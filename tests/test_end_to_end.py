@@ -22,7 +22,7 @@ def fleetsift(*args, check=True, timeout=1200):
     env = dict(os.environ, PREFECT_SERVER_ANALYTICS_ENABLED="false")
     for k in ("PREFECT_HOME", "PREFECT_API_URL", "PREFECT_API_DATABASE_CONNECTION_URL"):
         env.pop(k, None)
-    p = subprocess.run([sys.executable, "-m", "flows.cli", *args], capture_output=True, text=True, env=env,
+    p = subprocess.run([sys.executable, "-m", "fleetsift.flows.cli", *args], capture_output=True, text=True, env=env,
                        cwd=ROOT, timeout=timeout)
     if check and p.returncode not in (0, 3):
         raise AssertionError(f"fleetsift {args} exited {p.returncode}\nstdout:\n{p.stdout}\nstderr:\n{p.stderr}")
@@ -32,8 +32,8 @@ def fleetsift(*args, check=True, timeout=1200):
 @pytest.fixture(scope="module")
 def cold(tmp_path_factory):
     # The demo's inbox: the bundled fleet with one recording written as a ROS 2 bag (as `fleetsift demo` runs it).
-    from flows.cli import DEMO_BAG_RECORDING
-    from fleetsift.demo_bag import demo_inbox_with_bag
+    from fleetsift.flows.cli import DEMO_BAG_RECORDING
+    from fleetsift.demo.bag import demo_inbox_with_bag
 
     base = tmp_path_factory.mktemp("e2e")
     inbox = demo_inbox_with_bag(SAMPLE, base / "inbox", DEMO_BAG_RECORDING)
@@ -55,7 +55,7 @@ def test_run_json_contract(cold):
     assert out["quarantined"] == []
     assert out["stages"]["embed"]["computed"] == len(names)
     # The bag recording is read from the bag alone (scoring it beside the others needs the fleet's channel names).
-    from flows.cli import DEMO_BAG_RECORDING
+    from fleetsift.flows.cli import DEMO_BAG_RECORDING
 
     assert sorted(p.name for p in (inbox / DEMO_BAG_RECORDING).iterdir()) == ["bag", "profile.toml"]
 
@@ -82,7 +82,7 @@ def test_planted_anomalies_score_above_normal_windows(cold):
     # Outside reference: sklearn.metrics.roc_auc_score on the demo's planted-interval labels.
     from sklearn.metrics import roc_auc_score
 
-    from featurizers.evaluation import label_windows, read_labels
+    from fleetsift.scoring.evaluation import label_windows, read_labels
 
     inbox, store, out, _ = cold
     from deltalake import DeltaTable

@@ -11,8 +11,9 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from featurizers import fleet, scoring
-from featurizers.evaluation import (hanley_mcneil_se, label_windows, outlier_baselines, read_labels, roc_auc,
+from fleetsift.scoring import baseline as scoring
+from fleetsift.scoring import fleet
+from fleetsift.scoring.evaluation import (hanley_mcneil_se, label_windows, outlier_baselines, read_labels, roc_auc,
                                     roc_curve, tangent_vectors, window_descriptors)
 from fleetsift.errors import InputError
 from fleetsift.profile import Descriptor, Profile, Scoring, TableStream, Windowing
@@ -165,7 +166,7 @@ def _profile(**windowing) -> Profile:
 
 
 def test_default_grid_is_twelve_points_one_at_a_time():
-    from flows.sweep import PARAMS, base_values, default_grid, grid_points
+    from fleetsift.flows.sweep import PARAMS, base_values, default_grid, grid_points
 
     prof = _profile()
     pts = grid_points(default_grid(prof), prof)
@@ -178,7 +179,7 @@ def test_default_grid_is_twelve_points_one_at_a_time():
 
 
 def test_grid_full_design_and_errors(tmp_path):
-    from flows.sweep import grid_points, load_grid, point_profile
+    from fleetsift.flows.sweep import grid_points, load_grid, point_profile
 
     prof = _profile(rate_hz=10.0)
     g = tmp_path / "grid.toml"
@@ -212,7 +213,7 @@ def _cached(tmp_path, recs):
 
 
 def test_score_point_detects_a_planted_burst_and_reports_errors(tmp_path):
-    from flows.sweep import base_values, score_point
+    from fleetsift.flows.sweep import base_values, score_point
 
     rng = np.random.default_rng(4)
     prepared = _cached(tmp_path, _recordings(rng, n_rec=4, burst=(2, 20.0, 26.0)))
@@ -234,7 +235,7 @@ def fleetsift(*args, timeout=1500):
     env = dict(os.environ, PREFECT_SERVER_ANALYTICS_ENABLED="false")
     for k in ("PREFECT_HOME", "PREFECT_API_URL", "PREFECT_API_DATABASE_CONNECTION_URL"):
         env.pop(k, None)
-    p = subprocess.run([sys.executable, "-m", "flows.cli", *args], capture_output=True, text=True, env=env,
+    p = subprocess.run([sys.executable, "-m", "fleetsift.flows.cli", *args], capture_output=True, text=True, env=env,
                        cwd=ROOT, timeout=timeout)
     if p.returncode != 0:
         raise AssertionError(f"fleetsift {args} exited {p.returncode}\nstdout:\n{p.stdout}\nstderr:\n{p.stderr}")
@@ -243,7 +244,7 @@ def fleetsift(*args, timeout=1500):
 
 @pytest.fixture(scope="module")
 def evaluated(tmp_path_factory):
-    from fleetsift import demo_fleet
+    from fleetsift.demo import fleet as demo_fleet
 
     base = tmp_path_factory.mktemp("evaluate")
     inbox, store = base / "inbox", base / "store"

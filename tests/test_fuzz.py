@@ -19,7 +19,7 @@ from hypothesis import strategies as st
 
 from fleetsift.errors import InputError, ProfileError
 from fleetsift.profile import parse_profile
-from featurizers.tables import clean_table, read_table_file
+from fleetsift.featurizers.tables import clean_table, read_table_file
 
 FUZZ = settings(max_examples=250, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 _DIR = Path(tempfile.mkdtemp(prefix="fleetsift-fuzz-"))

@@ -133,7 +133,7 @@ def test_ulog_dropout_invalidates_the_windows_it_touches(ulog_fleet):
 def test_ulog_channels_renamed_and_calibrated_through_the_table_stage(ulog_fleet, tmp_path):
     # Outside reference: numpy.interp of the arrays the file was written from, minus the profile's az bias.
     from fleetsift.profile import load_profile
-    from tasks import stages
+    from fleetsift.tasks import stages
 
     inbox, _, _, src = ulog_fleet
     prof = load_profile(inbox / "profile.toml")
@@ -151,7 +151,7 @@ def test_ulog_channels_renamed_and_calibrated_through_the_table_stage(ulog_fleet
 
 @pytest.fixture(scope="module")
 def mixed_fleet(tmp_path_factory):
-    from fleetsift import demo_bag, demo_fleet
+    from fleetsift.demo import bag as demo_bag, fleet as demo_fleet
 
     base = tmp_path_factory.mktemp("mixed")
     names = demo_fleet.make_fleet(base / "csv", n_recordings=4, duration_s=20.0, seed=11)
@@ -183,7 +183,7 @@ def test_bag_recording_in_a_csv_fleet_scores_like_its_csv_twin(mixed_fleet):
 
 def test_demo_inbox_with_bag_is_stable_on_a_second_call(mixed_fleet):
     # A second call (as a second `make demo` makes) changes no file, so the store's caches still hold.
-    from fleetsift import demo_bag
+    from fleetsift.demo import bag as demo_bag
 
     base, names, _, _ = mixed_fleet
     before = {p: p.stat().st_mtime_ns for p in (base / "mixed").rglob("*") if p.is_file()}

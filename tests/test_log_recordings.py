@@ -4,7 +4,7 @@ import numpy as np
 import pytest
 
 from fleetsift.profile import parse_profile, profile_for
-from tasks import stages
+from fleetsift.tasks import stages
 
 CSV_PROFILE = """
 [windowing]
@@ -23,7 +23,7 @@ clock_offset_s = -0.35
 @pytest.mark.slow
 @pytest.mark.parametrize("storage", ["mcap", "sqlite3"])
 def test_bag_recording_matches_csv_and_video(tmp_path, storage):
-    from fleetsift import demo_bag, demo_fleet
+    from fleetsift.demo import bag as demo_bag, fleet as demo_fleet
 
     fleet = tmp_path / "fleet"
     (name,) = demo_fleet.make_fleet(fleet, n_recordings=1, duration_s=8.0, seed=3)

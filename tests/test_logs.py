@@ -1,4 +1,4 @@
-"""Trade log formats: PX4 ULog and ROS 2 bags (sqlite3 and MCAP storage) read through featurizers.logs.
+"""Trade log formats: PX4 ULog and ROS 2 bags (sqlite3 and MCAP storage) read through fleetsift.featurizers.logs.
 
 Every log here is written at test time: ROS 2 bags with rosbags' own writer, ULog files with a small writer that
 follows the published "ULog File Format" specification (PX4 User Guide, dev_log/ulog_file_format), byte for byte.
@@ -17,7 +17,7 @@ from PIL import Image as PILImage
 from rosbags.rosbag2 import StoragePlugin, Writer
 from rosbags.typesys import Stores, get_typestore
 
-from featurizers import logs
+from fleetsift.featurizers import logs
 from fleetsift.errors import InputError
 
 RNG_SEED = 20240611
@@ -500,7 +500,7 @@ def demo_recording(tmp_path_factory):
 def test_recording_to_bag_round_trip(demo_recording, tmp_path, storage):
     import av
 
-    from fleetsift.demo_bag import recording_to_bag
+    from fleetsift.demo.bag import recording_to_bag
 
     d, df = demo_recording
     bag = recording_to_bag(d, tmp_path / "bag", storage=storage, image_hz=5.0)
@@ -529,7 +529,7 @@ def test_ulog_recording_through_the_table_stage(ulog_case, tmp_path):
     import shutil
 
     from fleetsift.profile import parse_profile
-    from tasks import stages
+    from fleetsift.tasks import stages
 
     rec = tmp_path / "inbox" / "flight-01"
     rec.mkdir(parents=True)
@@ -547,7 +547,7 @@ def test_ulog_recording_through_the_table_stage(ulog_case, tmp_path):
 
 
 def test_ulog_fields_named_by_channels_calibration_checked_dropouts_kept(ulog_case, tmp_path):
-    from featurizers.recording import read_table_stream
+    from fleetsift.featurizers.recording import read_table_stream
     from fleetsift.profile import parse_profile
 
     rec = tmp_path / "rec"

@@ -48,7 +48,7 @@ def last_run_windows(store: Path) -> pd.DataFrame:
 @pytest.fixture(scope="module")
 def pool(tmp_path_factory) -> tuple[Path, list[str]]:
     """The generated fleet (all recordings), never run on directly."""
-    from fleetsift.demo_fleet import make_fleet
+    from fleetsift.demo.fleet import make_fleet
 
     out = tmp_path_factory.mktemp("fleet") / "pool"
     names = make_fleet(out, n_recordings=N_FIRST + 1, duration_s=DURATION_S)
@@ -222,7 +222,7 @@ def test_serve_schedules_and_a_triggered_run_lands_in_the_store(pool, tmp_path):
             _wait_for(lambda: _get_json(f"{api}/health") is True, 180, "the server's /api/health", procs)
             assert (store / "prefect" / "server.db").exists()
 
-            serve = subprocess.Popen([sys.executable, "-m", "flows.cli", "serve", "--cron", "0 2 * * *",
+            serve = subprocess.Popen([sys.executable, "-m", "fleetsift.flows.cli", "serve", "--cron", "0 2 * * *",
                                       "--inbox", str(inbox), "--store", str(store)],
                                      stdout=se, stderr=subprocess.STDOUT, env=env, cwd=ROOT)
             procs["fleetsift serve"] = (serve, serve_log)
@@ -323,7 +323,7 @@ def test_history_time_travel_and_maintain(two_nights, tmp_path):
 
 def test_discover_skips_a_store_inside_the_inbox(tmp_path):
     from fleetsift.store import Store
-    from flows.nightly import discover
+    from fleetsift.flows.nightly import discover
 
     for n in ("rover-01", "rover-02", ".hidden", "_scratch"):
         (tmp_path / n).mkdir()
@@ -353,8 +353,8 @@ def _table_fleet(root: Path, n: int = 4) -> Path:
 
 def test_cached_only_night_writes_nothing_until_all_is_cached_and_follows_renames(tmp_path):
     from fleetsift.store import Store
-    from flows import night
-    from tasks import stages
+    from fleetsift.flows import night
+    from fleetsift.tasks import stages
 
     inbox, store = _table_fleet(tmp_path / "inbox"), str(tmp_path / "store")
     direct = night.Steps(tables=stages.run_tables, embed=stages.run_embed, score=stages.run_score,

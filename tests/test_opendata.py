@@ -12,7 +12,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from featurizers import opendata
+import opendata
 from fleetsift.errors import InputError
 
 ROOT = Path(__file__).resolve().parent.parent
@@ -89,7 +89,7 @@ def fleetsift(*args, timeout=900):
     env = dict(os.environ, PREFECT_SERVER_ANALYTICS_ENABLED="false")
     for k in ("PREFECT_HOME", "PREFECT_API_URL", "PREFECT_API_DATABASE_CONNECTION_URL"):
         env.pop(k, None)
-    p = subprocess.run([sys.executable, "-m", "flows.cli", *args], capture_output=True, text=True, env=env,
+    p = subprocess.run([sys.executable, "-m", "fleetsift.flows.cli", *args], capture_output=True, text=True, env=env,
                        cwd=ROOT, timeout=timeout)
     assert p.returncode == 0, f"fleetsift {args} exited {p.returncode}\n{p.stdout}\n{p.stderr}"
     return json.loads(p.stdout)

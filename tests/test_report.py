@@ -15,7 +15,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from flows.report import SAFETY_NOTE, flagged_spans, pick_top, write_report
+from fleetsift.flows.report import SAFETY_NOTE, flagged_spans, pick_top, write_report
 
 ROOT = Path(__file__).resolve().parent.parent
 CHROMIUM = "/usr/bin/chromium"
@@ -114,7 +114,7 @@ def decode(src: str):
 
 def make_store(base: Path):
     """A store with one run written through Store.append, and recording folders with real IMU and video files."""
-    from featurizers.video import write_video
+    from fleetsift.demo.video import write_video
     from fleetsift.profile import load_profile
     from fleetsift.store import Store
 
@@ -301,7 +301,7 @@ def test_report_errors(tmp_path):
 @pytest.mark.slow
 @pytest.mark.timeout(1500)
 def test_report_of_a_real_run(tmp_path):
-    from fleetsift import demo_fleet
+    from fleetsift.demo import fleet as demo_fleet
     from fleetsift.store import Store
 
     inbox, store = tmp_path / "inbox", tmp_path / "store"
@@ -314,7 +314,7 @@ def test_report_of_a_real_run(tmp_path):
     env = dict(os.environ, PREFECT_SERVER_ANALYTICS_ENABLED="false")
     for k in ("PREFECT_HOME", "PREFECT_API_URL", "PREFECT_API_DATABASE_CONNECTION_URL"):
         env.pop(k, None)
-    p = subprocess.run([sys.executable, "-m", "flows.cli", "run", "--inbox", str(inbox), "--store", str(store),
+    p = subprocess.run([sys.executable, "-m", "fleetsift.flows.cli", "run", "--inbox", str(inbox), "--store", str(store),
                         "--json"], capture_output=True, text=True, env=env, cwd=ROOT, timeout=1200)
     assert p.returncode in (0, 3), p.stderr
     summary = json.loads(p.stdout)

@@ -6,9 +6,9 @@ import numpy as np
 import pytest
 from scipy.stats import median_abs_deviation
 
-from featurizers import descriptors as de
-from featurizers import scoring as sc
-from featurizers import spd
+from fleetsift.featurizers import descriptors as de
+from fleetsift.scoring import baseline as sc
+from fleetsift.scoring import geometry
 from fleetsift.errors import InputError
 
 
@@ -76,7 +76,7 @@ def test_knn_scores_against_brute_force(metric):
     D, rec, t, _, _ = fleet(2, n_rec=3, per_rec=30)
     Q, R = D[:30], D[30:]
     ex = sc.exclusion_mask(rec[:30], t[:30], rec[30:], t[30:], 10.0)
-    P = spd.pairwise_distance(Q, R, metric)
+    P = geometry.pairwise_distance(Q, R, metric)
     P[ex] = np.inf
     S = np.sort(P, axis=1)
     np.testing.assert_allclose(sc.knn_scores(Q, R, 4, metric, "kth", ex), S[:, 3], atol=1e-10)
@@ -94,8 +94,8 @@ def test_knn_scores_nan_when_fewer_than_k_allowed():
 
 def test_mean_scores_are_distances_to_the_mean():
     D, *_ = fleet(4, n_rec=1, per_rec=20)
-    M = spd.frechet_mean(D)
-    np.testing.assert_allclose(sc.mean_scores(D, M), [float(spd.distance(x, M)) for x in D], atol=1e-12)
+    M = geometry.frechet_mean(D)
+    np.testing.assert_allclose(sc.mean_scores(D, M), [float(geometry.distance(x, M)) for x in D], atol=1e-12)
 
 
 def test_riemannian_potato_rejects_planted_outliers():
@@ -103,7 +103,7 @@ def test_riemannian_potato_rejects_planted_outliers():
     pot = sc.riemannian_potato(D, z_threshold=3.0)
     assert not pot.kept[[7, 33, 50]].any()
     assert pot.kept.sum() >= 50
-    np.testing.assert_allclose(pot.mean, spd.frechet_mean(D[pot.kept]), atol=1e-10)
+    np.testing.assert_allclose(pot.mean, geometry.frechet_mean(D[pot.kept]), atol=1e-10)
     assert np.all(pot.z(D[[7, 33, 50]]) > 3.0)
 
 
@@ -130,7 +130,7 @@ def test_fit_baseline_trims_planted_outliers(metric, stat):
     # leave-one-out score.
     np.testing.assert_allclose(s[bl.ref_index], bl.loo_scores, atol=1e-10)
     if metric == "riemann":
-        np.testing.assert_allclose(bl.mean, spd.frechet_mean(bl.references), atol=1e-10)
+        np.testing.assert_allclose(bl.mean, geometry.frechet_mean(bl.references), atol=1e-10)
 
 
 def test_fit_baseline_max_refs_and_errors():
@@ -145,7 +145,7 @@ def test_fit_baseline_max_refs_and_errors():
 
 def test_attribution_names_the_perturbed_channel():
     D, rec, t, W, groups = fleet(8, n_rec=1, per_rec=40)
-    M = spd.frechet_mean(D)
+    M = geometry.frechet_mean(D)
     Wp = W[:5].copy()
     Wp[:, :, 3] *= 4.0
     Dp, g = de.describe(Wp, kind="ledoit_wolf", include_mean=True)
@@ -167,7 +167,7 @@ def test_attribution_row_energy_by_hand():
     X = X @ X.transpose(0, 2, 1) + np.eye(4)
     M = np.eye(4) * 2.0
     groups = np.array([0, 1, 1, -1])
-    L = spd.logm(X / 2.0)
+    L = geometry.logm(X / 2.0)
     E = (L ** 2).sum(axis=2)
     want = np.stack([E[:, 0], E[:, 1] + E[:, 2]], axis=1)
     want /= want.sum(axis=1, keepdims=True)
@@ -210,4 +210,4 @@ def test_online_running_mean_and_bound():
     onr = sc.OnlineScorer(blr)
     for i in range(20, 40):
         onr.update(D[i], rec[i], t[i])
-    assert float(spd.distance(onr.mean, spd.frechet_mean(D))) < 0.02
+    assert float(geometry.distance(onr.mean, geometry.frechet_mean(D))) < 0.02

@@ -6,8 +6,8 @@ import pytest
 from scipy import signal
 
 from fleetsift.errors import InputError
-from featurizers.recording import common_clock
-from featurizers.tables import (clean_table, cut_windows, gap_mask, place_on_clock, read_table_file, resample,
+from fleetsift.featurizers.recording import common_clock
+from fleetsift.featurizers.tables import (clean_table, cut_windows, gap_mask, place_on_clock, read_table_file, resample,
                                 uniform_clock, window_starts)
 
 

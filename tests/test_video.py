@@ -1,4 +1,4 @@
-"""featurizers.video: exact frame times from pts, sampling by pts, colour conversion, and bad-input errors."""
+"""fleetsift.featurizers.video: exact frame times from pts, sampling by pts, colour conversion, and bad-input errors."""
 
 import logging
 from fractions import Fraction
@@ -7,7 +7,8 @@ import av
 import numpy as np
 import pytest
 
-from featurizers import video
+from fleetsift.demo.video import write_video
+from fleetsift.featurizers import video
 from fleetsift.errors import InputError
 
 TB = Fraction(1, 90000)  # the MPEG system clock
@@ -38,7 +39,7 @@ def _jittered_pts(n, start_s=0.35, fps=15, jitter_s=0.004, seed=1):
 def jittered(tmp_path_factory):
     path = tmp_path_factory.mktemp("video") / "jitter.mp4"
     pts = _jittered_pts(40)
-    video.write_video(path, _frames(40), fps=15, pts=pts, time_base=TB, options={"crf": "18"})
+    write_video(path, _frames(40), fps=15, pts=pts, time_base=TB, options={"crf": "18"})
     return path, pts
 
 
@@ -65,7 +66,7 @@ def test_mpeg4_pts_exact_too(tmp_path):
     tb = Fraction(1, 30000)  # MPEG-4 Part 2 allows time-base denominators <= 65535
     pts = [int(p) for p in np.round(np.array(_jittered_pts(20)) / 3)]
     path = tmp_path / "m4.mp4"
-    video.write_video(path, _frames(20), fps=15, codec="mpeg4", pts=pts, time_base=tb)
+    write_video(path, _frames(20), fps=15, codec="mpeg4", pts=pts, time_base=tb)
     assert [t for t, _ in video.iter_frames(path)] == [float(p * tb) for p in pts]
     assert video.probe_video(path)["codec"] == "mpeg4"
 
@@ -213,7 +214,7 @@ def test_truncated_file_yields_what_decodes(jittered, tmp_path, caplog):
     path = tmp_path / "cut.mp4"
     path.write_bytes(data[: len(data) * 2 // 3])  # faststart: the index is at the front, the tail is missing
     stats = {}
-    with caplog.at_level(logging.WARNING, logger="featurizers.video"):
+    with caplog.at_level(logging.WARNING, logger="fleetsift.featurizers.video"):
         got = [t for t, _ in video.iter_frames(path, stats=stats)]
     assert 0 < len(got) < len(pts)
     assert got == [float(p * TB) for p in pts[: len(got)]]
@@ -223,8 +224,8 @@ def test_truncated_file_yields_what_decodes(jittered, tmp_path, caplog):
 
 def test_write_video_argument_checks(tmp_path):
     with pytest.raises(ValueError):
-        video.write_video(tmp_path / "a.mp4", _frames(3), fps=15, pts=[0, 1])
+        write_video(tmp_path / "a.mp4", _frames(3), fps=15, pts=[0, 1])
     with pytest.raises(ValueError):
-        video.write_video(tmp_path / "b.mp4", _frames(2), fps=15, codec="mpeg4", pts=[0, 6000], time_base=TB)
+        write_video(tmp_path / "b.mp4", _frames(2), fps=15, codec="mpeg4", pts=[0, 6000], time_base=TB)
     with pytest.raises(ValueError):
-        video.write_video(tmp_path / "c.mp4", [], fps=15)
+        write_video(tmp_path / "c.mp4", [], fps=15)

@@ -76,12 +76,12 @@ def window_descriptors(recs, *, center: np.ndarray, scale: np.ndarray, pca: dict
                        windowing, descriptor) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """The SPD descriptor of every valid window, as the fleet step computed it for a stored baseline.
 
-    ``recs`` are :class:`featurizers.fleet.RecordingFeatures`; ``center``/``scale``/``pca`` are a baseline's
+    ``recs`` are :class:`fleetsift.scoring.fleet.RecordingFeatures`; ``center``/``scale``/``pca`` are a baseline's
     channel standardisation and video PCA. Returns ``(descriptors (n, d, d), recording ids (n,), window indices
     (n,))``; windows that straddle a gap are left out, as in the fleet step.
     """
-    from featurizers import descriptors as desc
-    from featurizers import fleet
+    from fleetsift.featurizers import descriptors as desc
+    from fleetsift.scoring import fleet
 
     Ds, rids, idx = [], [], []
     for r in recs:
@@ -107,10 +107,10 @@ def tangent_vectors(descriptors: np.ndarray, mean: np.ndarray) -> np.ndarray:
     The tangent space mapping of Barachant et al. (2012, IEEE TBME 59:920); the Euclidean norm of each vector is
     the affine-invariant distance of X to M, so vector-space detectors see (locally) the manifold's geometry.
     """
-    from featurizers import spd
+    from fleetsift.scoring import geometry
 
-    W = spd.invsqrtm(mean)
-    return spd.vec(spd.logm(W @ np.asarray(descriptors, np.float64) @ W))
+    W = geometry.invsqrtm(mean)
+    return geometry.vec(geometry.logm(W @ np.asarray(descriptors, np.float64) @ W))
 
 
 def outlier_baselines(features: np.ndarray, seed: int = 0, n_neighbors: int = 20) -> dict[str, np.ndarray]:

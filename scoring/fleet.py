@@ -11,10 +11,10 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from featurizers import descriptors as desc
-from featurizers import scoring
-from featurizers.pca import fit_pca
-from featurizers.tables import cut_windows, place_on_clock, window_starts
+from fleetsift.featurizers import descriptors as desc
+from fleetsift.featurizers.pca import fit_pca
+from fleetsift.featurizers.tables import cut_windows, place_on_clock, window_starts
+from fleetsift.scoring import baseline
 
 METRICS = ("riemann", "logeuclid", "euclid")
 
@@ -39,7 +39,7 @@ class FleetBaseline:
     center: np.ndarray
     scale: np.ndarray
     pca: dict[str, dict[str, np.ndarray]]  # per video stream
-    per_metric: dict[str, scoring.Baseline]
+    per_metric: dict[str, baseline.Baseline]
     reference_recordings: list[str]
 
 
@@ -196,7 +196,7 @@ def score_fleet(recs: list[RecordingFeatures], *, windowing, descriptor, scoring
     per = describe_all(center, scale)
     D, rec_idx, times, _ = stack(per)
     in_base = is_base[rec_idx]
-    bl = scoring.fit_baseline(D[in_base], rec_idx[in_base], times[in_base], k=scoring_cfg.k, metric=primary,
+    bl = baseline.fit_baseline(D[in_base], rec_idx[in_base], times[in_base], k=scoring_cfg.k, metric=primary,
                               stat=scoring_cfg.knn_stat, zone_s=scoring_cfg.exclusion_s,
                               trim_fraction=scoring_cfg.trim_fraction, c=scoring_cfg.threshold_c)
     # Pass 2: refit the standardisation on the kept windows only, so planted/unknown anomalies do not inflate it.
@@ -217,14 +217,14 @@ def score_fleet(recs: list[RecordingFeatures], *, windowing, descriptor, scoring
         D, rec_idx, times, _ = stack(per)
         in_base = is_base[rec_idx]
 
-    per_metric: dict[str, scoring.Baseline] = {}
+    per_metric: dict[str, baseline.Baseline] = {}
     for m in metrics:
-        per_metric[m] = scoring.fit_baseline(D[in_base], rec_idx[in_base], times[in_base], k=scoring_cfg.k, metric=m,
+        per_metric[m] = baseline.fit_baseline(D[in_base], rec_idx[in_base], times[in_base], k=scoring_cfg.k, metric=m,
                                              stat=scoring_cfg.knn_stat, zone_s=scoring_cfg.exclusion_s,
                                              trim_fraction=scoring_cfg.trim_fraction, c=scoring_cfg.threshold_c)
-    scores_all = {m: scoring.score(D, rec_idx, times, per_metric[m]) for m in metrics}
+    scores_all = {m: baseline.score(D, rec_idx, times, per_metric[m]) for m in metrics}
     groups = next(g for (_, _, _, _, d, g) in per if d is not None)
-    shares = scoring.attribute(D, per_metric[primary].mean, groups, len(names))
+    shares = baseline.attribute(D, per_metric[primary].mean, groups, len(names))
 
     bid = _baseline_id(center, scale, pca, per_metric)
     fb = FleetBaseline(baseline_id=bid, channels=names, center=center, scale=scale, pca=pca, per_metric=per_metric,

@@ -11,7 +11,8 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from featurizers import spd
+from fleetsift.scoring import geometry
+from fleetsift.scoring.index import KNNIndex, knn
 from fleetsift.errors import InputError
 
 __all__ = ["MAD_SCALE", "STATS", "exclusion_mask", "knn_scores", "mean_scores", "robust_z", "median_mad",
@@ -21,7 +22,7 @@ __all__ = ["MAD_SCALE", "STATS", "exclusion_mask", "knn_scores", "mean_scores", 
 # MAD -> standard deviation for Gaussian data: 1 / Phi^-1(3/4) (common practice).
 MAD_SCALE = 1.4826
 STATS = ("kth", "mean")
-_SRC = "featurizers.scoring"
+_SRC = "fleetsift.scoring.baseline"
 
 
 # ---------------------------------------------------------------------------------------- robust statistics
@@ -109,16 +110,16 @@ def _stat(dist: np.ndarray, k: int, stat: str) -> np.ndarray:
 
 
 def knn_scores(queries, references, k: int, metric: str = "riemann", stat: str = "kth", exclude=None,
-               index: spd.KNNIndex | None = None) -> np.ndarray:
+               index: KNNIndex | None = None) -> np.ndarray:
     """kNN score of each query -> ``(n,)``: the k-th (``stat="kth"``) or mean (``"mean"``) of its k exact
-    nearest-reference distances (:func:`featurizers.spd.knn`).
+    nearest-reference distances (:func:`fleetsift.scoring.index.knn`).
 
     ``exclude`` bool ``(n, m)`` as in :func:`exclusion_mask`. A query with fewer than k allowed references has
-    an undefined score: NaN. ``index`` may be a prebuilt :class:`~featurizers.spd.KNNIndex` over ``references``.
+    an undefined score: NaN. ``index`` may be a prebuilt :class:`~fleetsift.scoring.index.KNNIndex` over ``references``.
     """
     _check_stat(stat)
     if index is None:
-        dist, _ = spd.knn(queries, references, k, metric, exclude=exclude)
+        dist, _ = knn(queries, references, k, metric, exclude=exclude)
     else:
         dist, _ = index.query(queries, k, exclude=exclude)
     return _stat(dist, int(k), stat)
@@ -126,7 +127,7 @@ def knn_scores(queries, references, k: int, metric: str = "riemann", stat: str =
 
 def mean_scores(queries, mean, metric: str = "riemann") -> np.ndarray:
     """Distance of each query ``(n, d, d)`` to a Fréchet mean ``(d, d)`` -> ``(n,)``."""
-    return np.asarray(spd.distance(queries, mean, metric)).reshape(-1)
+    return np.asarray(geometry.distance(queries, mean, metric)).reshape(-1)
 
 
 @dataclass
@@ -157,7 +158,7 @@ def riemannian_potato(references, metric: str = "riemann", z_threshold: float = 
     """
     X = np.asarray(references, dtype=np.float64)
     kept = np.ones(len(X), dtype=bool)
-    M = spd.frechet_mean(X, metric)
+    M = geometry.frechet_mean(X, metric)
     it = 0
     for it in range(1, int(max_iter) + 1):
         d = mean_scores(X, M, metric)
@@ -168,7 +169,7 @@ def riemannian_potato(references, metric: str = "riemann", z_threshold: float = 
         if np.array_equal(new, kept):
             break
         kept = new
-        M = spd.frechet_mean(X[kept], metric)
+        M = geometry.frechet_mean(X[kept], metric)
     d = mean_scores(X[kept], M, metric)
     med, mad = median_mad(d)
     return Potato(mean=M, kept=kept, median=med, mad=mad, n_iter=it)
@@ -204,9 +205,9 @@ class Baseline:
     median: float = float("nan")
     mad: float = float("nan")
 
-    def index(self) -> spd.KNNIndex:
-        """A :class:`~featurizers.spd.KNNIndex` over the references (whitened by ``mean`` for riemann)."""
-        return spd.KNNIndex(self.references, self.metric,
+    def index(self) -> KNNIndex:
+        """A :class:`~fleetsift.scoring.index.KNNIndex` over the references (whitened by ``mean`` for riemann)."""
+        return KNNIndex(self.references, self.metric,
                             whiten_point=self.mean if self.metric == "riemann" else None)
 
 
@@ -235,7 +236,7 @@ def fit_baseline(descriptors, rec_ids, times, k: int = 5, metric: str = "riemann
     4. Leave-one-out scores of the references against each other give ``threshold = median + c * 1.4826 * MAD``.
     5. ``mean`` is the references' Fréchet mean for ``metric``.
     """
-    spd._check_metric(metric)
+    geometry._check_metric(metric)
     _check_stat(stat)
     D, rec, t = _check_windows(descriptors, rec_ids, times)
     n = len(D)
@@ -255,9 +256,9 @@ def fit_baseline(descriptors, rec_ids, times, k: int = 5, metric: str = "riemann
     if max_refs is not None and len(ref_index) > int(max_refs):
         ref_index = ref_index[np.unique(np.linspace(0, len(ref_index) - 1, int(max_refs)).round().astype(int))]
     R, rr, rt = D[ref_index], rec[ref_index], t[ref_index]
-    M = spd.frechet_mean(R, metric)
+    M = geometry.frechet_mean(R, metric)
     ex_r = exclusion_mask(rr, rt, rr, rt, zone_s)
-    index = spd.KNNIndex(R, metric, whiten_point=M if metric == "riemann" else None)
+    index = KNNIndex(R, metric, whiten_point=M if metric == "riemann" else None)
     loo = _stat(index.query(R, k, exclude=ex_r, _self=True)[0], k, stat)
     if not np.any(np.isfinite(loo)):
         raise InputError(_SRC, "descriptors", f"references with at least k={k} allowed neighbours "
@@ -268,7 +269,7 @@ def fit_baseline(descriptors, rec_ids, times, k: int = 5, metric: str = "riemann
                     ref_index=ref_index, initial_scores=initial, c=float(c), median=med, mad=mad)
 
 
-def score(descriptors, rec_ids, times, baseline: Baseline, index: spd.KNNIndex | None = None) -> np.ndarray:
+def score(descriptors, rec_ids, times, baseline: Baseline, index: KNNIndex | None = None) -> np.ndarray:
     """kNN scores ``(n,)`` of windows against ``baseline.references``, with the baseline's exclusion zone (a
     window that is itself a reference never counts itself). NaN where fewer than k references are allowed."""
     D, rec, t = _check_windows(descriptors, rec_ids, times)
@@ -295,8 +296,8 @@ def attribute(descriptors, ref_mean, groups, n_groups: int) -> np.ndarray:
         raise InputError(_SRC, "groups", f"one group index per dimension ({d})", f"shape {groups.shape}")
     if np.any(groups >= n_groups) or np.any(groups < -1):
         raise InputError(_SRC, "groups", f"indices in [-1, {n_groups})", f"range [{groups.min()}, {groups.max()}]")
-    W = spd.invsqrtm(ref_mean)
-    L = spd.logm(W @ X @ W)
+    W = geometry.invsqrtm(ref_mean)
+    L = geometry.logm(W @ X @ W)
     E = np.sum(L ** 2, axis=-1)  # (n, d) row energies
     real = groups >= 0
     G = np.zeros((int(real.sum()), int(n_groups)))
@@ -362,6 +363,6 @@ class OnlineScorer:
             self.rec_ids, self.times = self.rec_ids[drop:], self.times[drop:]
         self.n_seen += 1
         if self.baseline.metric == "logdet":
-            self.mean = spd.frechet_mean(self.index.references, "logdet")
+            self.mean = geometry.frechet_mean(self.index.references, "logdet")
         else:
-            self.mean = spd.geodesic(self.mean, X, 1.0 / self.n_seen, self.baseline.metric)
+            self.mean = geometry.geodesic(self.mean, X, 1.0 / self.n_seen, self.baseline.metric)

@@ -873,7 +873,7 @@ def frame_times(rng: np.random.Generator, duration_s: float, fps: float) -> np.n
 def render_video(path: Path, motion: Motion, t_frames: np.ndarray, size: tuple[int, int], exposure: float,
                  fps: float, codec: str = "libx264") -> dict:
     """Render and encode the camera stream; returns per-sprite visible pixel counts per frame."""
-    from featurizers.video import write_video
+    from fleetsift.demo.video import write_video
 
     renderer = Renderer(motion.world, size, exposure)
     heading = np.interp(t_frames, motion.t, motion.heading)
