@@ -11,8 +11,8 @@ import numpy as np
 
 from fleetsift.errors import InputError
 
-__all__ = ["KINDS", "ledoit_wolf", "oas", "rbf_kernel_matrix", "lagged_covariance", "lagged_groups",
-           "gaussian_embedding", "describe"]
+__all__ = ["KINDS", "RIDGE_RANGE", "baseline_ridge", "ledoit_wolf", "oas", "rbf_kernel_matrix", "lagged_covariance",
+           "lagged_groups", "gaussian_embedding", "describe"]
 
 KINDS = ("ledoit_wolf", "oas", "rbf", "lagged")
 _SRC = "fleetsift.featurizers.descriptors"
@@ -180,14 +180,44 @@ def gaussian_embedding(mean, cov) -> np.ndarray:
     return out
 
 
-def describe(X, kind: str = "ledoit_wolf", include_mean: bool = True, lags: int = 3, ridge: float = 1e-6):
+# Bounds of the automatic ridge, in units of a channel's variance over the baseline (our choice): exactly dependent
+# or constant channels never remove the floor, and the floor never exceeds a channel's own variance.
+RIDGE_RANGE = (0.05, 1.0)
+
+
+def baseline_ridge(samples) -> float:
+    """The automatic noise floor of the descriptors: the smallest eigenvalue of the baseline's channel
+    correlation matrix, clipped to :data:`RIDGE_RANGE`.
+
+    ``samples (n, c)`` are the baseline's samples; channels constant over them are left out. In the standardised
+    units the descriptors are computed in (every channel of variance 1 over the baseline), the correlation
+    matrix is the samples' covariance, and its smallest eigenvalue is the variance of the direction in which normal operation varies least; a window
+    covariance that varies less than that in some direction is floored there instead of letting that direction's
+    estimation noise dominate the affine-invariant distance. Chosen without labels: it depends only on the
+    baseline's own spectrum.
+    """
+    x = np.asarray(samples, dtype=np.float64)
+    if x.ndim != 2 or x.shape[0] < 2:
+        raise InputError(_SRC, "samples", "baseline samples of shape (n >= 2, channels)", f"shape {x.shape}")
+    x = x[np.all(np.isfinite(x), axis=1)]
+    var = x.var(axis=0)
+    live = var > 1e-9
+    lo, hi = RIDGE_RANGE
+    if live.sum() == 0 or len(x) < 2:
+        return lo
+    C = np.corrcoef(x[:, live], rowvar=False).reshape(int(live.sum()), int(live.sum()))
+    return float(np.clip(np.linalg.eigvalsh(C)[0], lo, hi))
+
+
+def describe(X, kind: str = "ledoit_wolf", include_mean: bool = True, lags: int = 3, ridge: float | str = "auto"):
     """SPD descriptor of every window -> ``(descriptors (n, d, d), groups (d,))``.
 
     ``kind``: ``"ledoit_wolf"`` / ``"oas"`` (shrunk covariance, c x c), ``"rbf"`` (kernel between channels,
     :func:`rbf_kernel_matrix` with the median heuristic), ``"lagged"`` (:func:`lagged_covariance` with
     Ledoit-Wolf shrinkage, c(L+1) x c(L+1)). ``ridge * I`` is added to every matrix so each is strictly positive
     definite (smallest eigenvalue >= ridge) even for windows with more channels than samples, constant or
-    duplicated channels.
+    duplicated channels; ``ridge="auto"`` takes :func:`baseline_ridge` of the windows' own samples (the windows
+    are then their own baseline).
 
     ``include_mean`` embeds the window mean: ``[[C + mu mu^T, mu], [mu^T, 1]]`` (Calvo & Oller 1990) with ``C``
     the matrix above (for ``rbf`` this is the same block construction around the kernel matrix, without the
@@ -197,10 +227,14 @@ def describe(X, kind: str = "ledoit_wolf", include_mean: bool = True, lags: int 
     """
     if kind not in KINDS:
         raise InputError(_SRC, "kind", f"one of {KINDS}", repr(kind))
+    X = _windows(X, min_samples=(int(lags) + 2) if kind == "lagged" else 2)
+    if isinstance(ridge, str):
+        if ridge != "auto":
+            raise InputError(_SRC, "ridge", 'a positive finite number or "auto"', repr(ridge))
+        ridge = baseline_ridge(X.reshape(-1, X.shape[2]))
     ridge = float(ridge)
     if not np.isfinite(ridge) or ridge <= 0:
         raise InputError(_SRC, "ridge", "a positive finite number", ridge)
-    X = _windows(X, min_samples=(int(lags) + 2) if kind == "lagged" else 2)
     c = X.shape[2]
     if kind == "ledoit_wolf":
         C, mu, groups = ledoit_wolf(X), X.mean(axis=1), np.arange(c)

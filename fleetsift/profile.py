@@ -20,8 +20,13 @@ PROFILE_NAME = "profile.toml"
 TIME_UNITS = {"s": 1.0, "ms": 1e-3, "us": 1e-6, "ns": 1e-9}
 DESCRIPTOR_KINDS = ("ledoit_wolf", "oas", "rbf", "lagged")
 METRICS = ("riemann", "logeuclid", "euclid")
-SCORING_METHODS = ("knn", "mean")
+# knn: k-th nearest neighbour distance; density: local outlier factor; mean: distance to the Fréchet mean.
+SCORING_METHODS = ("knn", "density", "mean")
 KNN_STATS = ("kth", "mean")
+# Neighbours counted in recordings (the nearest window of each of the k nearest recordings) or in windows.
+KNN_UNITS = ("recording", "window")
+# Where a night's references come from: earlier nights' unflagged windows, tonight's batch, chosen recordings.
+BASELINE_SOURCES = ("history", "batch", "recordings")
 STREAM_KINDS = ("table", "video")
 STAMP_SOURCES = ("header", "receive")
 
@@ -80,9 +85,14 @@ class Descriptor:
     kind: str = "ledoit_wolf"
     include_mean: bool = True
     lags: int = 3
-    # A noise floor in standardised units: without it near-constant channels (a rover standing still) own the
-    # smallest eigenvalues, which dominate the affine-invariant distance. Chosen on the demo fleet.
-    ridge: float = 0.3
+    # A noise floor added to every window covariance, in standardised units, or "auto": the smallest eigenvalue
+    # of the baseline's channel correlation matrix (see featurizers.descriptors.baseline_ridge). Without a floor,
+    # near-constant channels (a rover standing still) own the smallest eigenvalues, which dominate the
+    # affine-invariant distance.
+    ridge: float | str = "auto"
+    # One descriptor per stream, each scored on its own and combined by the largest robust z, or one descriptor
+    # over all channels: a deviation in one stream is then not diluted by the other streams' normal variation.
+    per_stream: bool = True
 
 
 @dataclass(frozen=True)
@@ -91,6 +101,7 @@ class Scoring:
     method: str = "knn"
     k: int = 3
     knn_stat: str = "kth"
+    knn_unit: str = "recording"
     exclusion_s: float = 30.0
     trim_fraction: float = 0.1
     threshold_c: float = 3.0
@@ -99,7 +110,16 @@ class Scoring:
 
 @dataclass(frozen=True)
 class BaselineSpec:
+    # history: from the second night on, the references are earlier committed nights' unflagged windows
+    # (tonight's batch joins while the history holds fewer than k + 1 recordings); batch: tonight's batch,
+    # robustly trimmed; recordings: the recordings listed in `recordings`.
+    source: str = "history"
     recordings: tuple[str, ...] = ()
+    history_nights: int = 7  # committed nights the references are drawn from, newest first
+    max_references: int = 4000  # cap on reference windows, evenly subsampled in (night, recording, time) order
+    # A window joins later nights' references only when its score (a robust z) is at most this, it is not
+    # flagged and no flagged window of its recording lies within one window length of it.
+    history_max_score: float = 2.0
 
 
 @dataclass(frozen=True)
@@ -265,11 +285,17 @@ def profile_from_dict(data: dict, path: str = "<profile>") -> Profile:
 
     d = c.table(data.get("descriptor", {}), "descriptor")
     c.no_unknown(d, {f for f in Descriptor.__dataclass_fields__}, "descriptor")
+    ridge = d.get("ridge", Descriptor.ridge)
+    if ridge != "auto":
+        if isinstance(ridge, str):
+            c.fail("descriptor.ridge", 'a number > 0 or "auto"', repr(ridge))
+        ridge = c.number(d, "ridge", "descriptor", 1.0, positive=True)
     descriptor = Descriptor(
         kind=c.string(d, "kind", "descriptor", Descriptor.kind, choices=DESCRIPTOR_KINDS),
         include_mean=c.boolean(d, "include_mean", "descriptor", Descriptor.include_mean),
         lags=c.integer(d, "lags", "descriptor", Descriptor.lags, lo=1),
-        ridge=c.number(d, "ridge", "descriptor", Descriptor.ridge, positive=True),
+        ridge=ridge,
+        per_stream=c.boolean(d, "per_stream", "descriptor", Descriptor.per_stream),
     )
 
     s = c.table(data.get("scoring", {}), "scoring")
@@ -279,6 +305,7 @@ def profile_from_dict(data: dict, path: str = "<profile>") -> Profile:
         method=c.string(s, "method", "scoring", Scoring.method, choices=SCORING_METHODS),
         k=c.integer(s, "k", "scoring", Scoring.k, lo=1),
         knn_stat=c.string(s, "knn_stat", "scoring", Scoring.knn_stat, choices=KNN_STATS),
+        knn_unit=c.string(s, "knn_unit", "scoring", Scoring.knn_unit, choices=KNN_UNITS),
         exclusion_s=c.number(s, "exclusion_s", "scoring", Scoring.exclusion_s, nonneg=True, finite=False),
         trim_fraction=c.number(s, "trim_fraction", "scoring", Scoring.trim_fraction, lo=0.0, hi=0.5),
         threshold_c=c.number(s, "threshold_c", "scoring", Scoring.threshold_c, positive=True),
@@ -286,8 +313,20 @@ def profile_from_dict(data: dict, path: str = "<profile>") -> Profile:
     )
 
     b = c.table(data.get("baseline", {}), "baseline")
-    c.no_unknown(b, {"recordings"}, "baseline")
-    baseline = BaselineSpec(recordings=c.strings(b, "recordings", "baseline", ()))
+    c.no_unknown(b, {f for f in BaselineSpec.__dataclass_fields__}, "baseline")
+    recordings = c.strings(b, "recordings", "baseline", ())
+    # Listing recordings without naming a source keeps its old meaning: the baseline is those recordings.
+    source = c.string(b, "source", "baseline", "recordings" if recordings else BaselineSpec.source,
+                      choices=BASELINE_SOURCES)
+    if source == "recordings" and not recordings:
+        c.fail("baseline.recordings", 'at least one recording name with source = "recordings"', "none")
+    baseline = BaselineSpec(source=source, recordings=recordings,
+                            history_nights=c.integer(b, "history_nights", "baseline", BaselineSpec.history_nights,
+                                                     lo=1),
+                            max_references=c.integer(b, "max_references", "baseline", BaselineSpec.max_references,
+                                                     lo=10),
+                            history_max_score=c.number(b, "history_max_score", "baseline",
+                                                       BaselineSpec.history_max_score))
 
     raw_streams = c.table(data.get("streams", {}), "streams")
     if not raw_streams:

@@ -48,6 +48,11 @@ TABLE_SCHEMAS: dict[str, pa.Schema] = {
         ("n_flagged", pa.int64()),
         ("status", pa.string()),
         ("inbox", pa.string()),
+        # Added in 0.2 (older rows read as empty): what the night's scores were measured against.
+        ("baseline_source", pa.string()),
+        ("n_references", pa.int64()),
+        ("space_key", pa.string()),
+        ("score_output", pa.string()),  # the score stage's bank, relative to the store: later nights' references
     ]),
     "recordings": pa.schema([
         ("run_id", pa.string()),
@@ -71,7 +76,23 @@ TABLE_SCHEMAS: dict[str, pa.Schema] = {
         ("top_channels", pa.string()),
         ("baseline_id", pa.string()),
     ]),
+    # Engineers' verdicts on windows (window_index -1: the whole recording); the latest per window counts.
+    "reviews": pa.schema([
+        ("review_id", pa.string()),
+        ("reviewed_at", pa.timestamp("us", tz="UTC")),
+        ("run_id", pa.string()),
+        ("recording_id", pa.string()),
+        ("content_hash", pa.string()),
+        ("window_index", pa.int64()),
+        ("t_start_s", pa.float64()),
+        ("t_end_s", pa.float64()),
+        ("verdict", pa.string()),
+        ("note", pa.string()),
+        ("reviewer", pa.string()),
+    ]),
 }
+# The column that makes a retried append a no-op.
+TABLE_KEYS = {"runs": "run_id", "recordings": "run_id", "windows": "run_id", "reviews": "review_id"}
 TABLES = tuple(TABLE_SCHEMAS)
 
 
@@ -202,7 +223,7 @@ class Store:
         return digest
 
     # --- Delta tables ---------------------------------------------------------------------------------------------
-    def has_run(self, table: str, run_id: str) -> bool:
+    def has_run(self, table: str, run_id: str, column: str = "run_id") -> bool:
         from deltalake import DeltaTable
         import pyarrow.dataset as ds
 
@@ -210,19 +231,24 @@ class Store:
         if not (path / "_delta_log").exists():
             return False
         dataset = DeltaTable(str(path)).to_pyarrow_dataset()
-        return dataset.count_rows(filter=ds.field("run_id") == run_id) > 0
+        return dataset.count_rows(filter=ds.field(column) == run_id) > 0
 
     def append(self, table: str, df: pd.DataFrame) -> int | None:
-        """Append one run's rows; a retried write of the same run_id is a no-op (idempotent)."""
+        """Append one run's rows (one review's, for `reviews`); a retried write of the same run_id (review_id) is a
+        no-op (idempotent). Columns added to a table's schema in a later release are merged into older tables."""
         from deltalake import write_deltalake
 
         schema = TABLE_SCHEMAS[table]
         if df.empty:
             return None
-        run_ids = df["run_id"].unique()
-        assert len(run_ids) == 1, "one run per append"
-        if self.has_run(table, str(run_ids[0])):
+        key = TABLE_KEYS[table]
+        ids = df[key].unique()
+        assert len(ids) == 1, f"one {key} per append"
+        if self.has_run(table, str(ids[0]), key):
             return None
+        for f in schema:
+            if f.name not in df.columns:
+                df = df.assign(**{f.name: None})
         df = df[[f.name for f in schema]].copy()
         for f in schema:
             if pa.types.is_timestamp(f.type):
@@ -230,7 +256,7 @@ class Store:
                 # which pyarrow's safe cast refuses ("would lose data"). Truncate explicitly, nothing else.
                 df[f.name] = pd.to_datetime(df[f.name], utc=True).dt.floor("us")
         arrow = pa.Table.from_pandas(df, schema=schema, preserve_index=False)
-        write_deltalake(str(self.table_path(table)), arrow, mode="append")
+        write_deltalake(str(self.table_path(table)), arrow, mode="append", schema_mode="merge")
         return self.version(table)
 
     def version(self, table: str = "runs") -> int | None:
@@ -250,7 +276,11 @@ class Store:
             return TABLE_SCHEMAS[table].empty_table().to_pandas()
         dataset = DeltaTable(str(path), version=version).to_pyarrow_dataset()
         flt = ds.field("run_id") == run_id if run_id else None
-        return dataset.to_table(filter=flt).to_pandas()
+        df = dataset.to_table(filter=flt).to_pandas()
+        for f in TABLE_SCHEMAS[table]:  # a version written before a column was added
+            if f.name not in df.columns:
+                df[f.name] = None
+        return df
 
     def run_ids(self, table: str) -> set[str]:
         """The distinct run_ids in one table (current version)."""

@@ -49,6 +49,9 @@ def summarise(result: dict, metric: str) -> dict:
         "store": result["store"],
         "store_version": result["store_version"],
         "baseline_id": (result.get("score") or {}).get("baseline_id"),
+        # Which references the scores were measured against: earlier nights (history), tonight's batch, or chosen
+        # recordings; their count, recordings and the runs they come from.
+        "baseline": (result.get("score") or {}).get("baseline"),
         "metric": metric,
         "thresholds": (result.get("score") or {}).get("thresholds"),
         "recordings": recs,
@@ -86,8 +89,9 @@ def do_run(inbox: str, store: str, profile: str | None, runner: str, dask_addres
     """One night under the store's write lock, then its report.
 
     With ``orchestrate="auto"`` a local night first tries the direct path (flows/night.py CACHED_ONLY): when every
-    stage output is already cached it is recorded without starting Prefect, whose start-up would be most of the
-    time; as soon as one output is missing (checked before any write) the Prefect flow runs instead.
+    recording's stage outputs (tables, embeddings) are already cached, the fleet step runs and the night is recorded
+    without starting Prefect, whose start-up would be most of the time; as soon as one recording needs work
+    (checked before any write) the Prefect flow runs instead.
     """
     env.configure(store)
     from fleetsift.store import Store
@@ -217,8 +221,8 @@ def cmd_evaluate(a) -> int:
         from fleetsift.flows.evaluate import evaluate_store
 
         plot = a.plot or str(Path(store) / "reports" / f"{result['run_id']}-roc.png")
-        ev = evaluate_store(store, result["run_id"], a.labels, plot=plot, inbox=a.inbox, profile=a.profile,
-                            baselines=not a.no_baselines)
+        ev = evaluate_store(store, result["run_id"], a.labels, plot=plot, baselines=not a.no_baselines,
+                            reviews_store=a.reviews_from)
     except (InputError, StoreLockedError) as e:
         print(f"fleetsift: {e}", file=sys.stderr)
         return EXIT_ERROR
@@ -234,6 +238,37 @@ def cmd_evaluate(a) -> int:
             print(f"outlier baselines: {ev['baselines_note']}")
         print(f"windows {ev['n_windows']}, anomalous {ev['n_anomalous']}" + (f"; ROC plot {ev['plot']}"
                                                                              if ev.get("plot") else ""))
+    return EXIT_OK
+
+
+def cmd_review(a) -> int:
+    from fleetsift.errors import InputError, StoreLockedError
+    from fleetsift.flows.review import record_review
+    from fleetsift.store import Store
+
+    st = Store(a.store)
+    if not (st.root / "runs" / "_delta_log").exists():
+        print(f"fleetsift: {st.root}: store: expected a results store with committed runs, got none", file=sys.stderr)
+        return EXIT_ERROR
+    try:
+        with st.lock(wait_s=a.wait):
+            rows = record_review(str(st.root), a.run, a.verdict, windows=a.window or [], recordings=a.recording or [],
+                                 note=a.note or "", reviewer=a.reviewer)
+    except StoreLockedError as e:
+        print(f"fleetsift: {e}", file=sys.stderr)
+        return EXIT_LOCKED
+    except InputError as e:
+        print(f"fleetsift: {e}", file=sys.stderr)
+        return EXIT_ERROR
+    out = {"review_id": rows["review_id"].iloc[0], "verdict": a.verdict, "run_id": a.run,
+           "windows": [{"recording_id": r.recording_id, "window_index": int(r.window_index)}
+                       for r in rows.itertuples(index=False)]}
+    if a.json:
+        print(json.dumps(out))
+    else:
+        what = ", ".join(f"{w['recording_id']}" + ("" if w["window_index"] < 0 else f":{w['window_index']}")
+                         for w in out["windows"])
+        print(f"recorded {a.verdict} for {what} (review {out['review_id']}); it applies from the next night on")
     return EXIT_OK
 
 
@@ -322,7 +357,10 @@ def build_parser() -> argparse.ArgumentParser:
 
     e = sub.add_parser("evaluate", help="score an inbox and compare with labelled anomalous intervals")
     e.add_argument("--inbox", required=True)
-    e.add_argument("--labels", required=True)
+    lab = e.add_mutually_exclusive_group(required=True)
+    lab.add_argument("--labels", help="CSV recording,start_s,end_s of anomalous intervals")
+    lab.add_argument("--reviews-from", dest="reviews_from", metavar="STORE",
+                     help="use the engineers' verdicts in this store as the labels (only reviewed windows count)")
     e.add_argument("--profile")
     e.add_argument("--store", help="store to use (default: a scratch folder)")
     e.add_argument("--plot", help="write ROC curves to this PNG (default STORE/reports/RUN-roc.png)")
@@ -331,6 +369,21 @@ def build_parser() -> argparse.ArgumentParser:
     e.add_argument("--wait", type=float, default=0.0)
     e.add_argument("--json", action="store_true")
     e.set_defaults(fn=cmd_evaluate)
+
+    rv = sub.add_parser("review", help="record an engineer's verdict on scored windows or recordings")
+    rv.add_argument("--store", required=True, help="the results store holding the run")
+    rv.add_argument("--run", required=True, help="the run whose windows were reviewed")
+    rv.add_argument("--window", action="append", metavar="RECORDING:INDEX",
+                    help="a reviewed window, e.g. rover-01-zone-s:12 (repeatable)")
+    rv.add_argument("--recording", action="append", metavar="RECORDING",
+                    help="a whole reviewed recording (repeatable)")
+    rv.add_argument("--verdict", required=True, choices=("normal", "fault"),
+                    help="normal: the window joins the baseline and is not flagged again; fault: it never joins")
+    rv.add_argument("--note", help="free text kept with the verdict")
+    rv.add_argument("--reviewer", help="who reviewed (default: the login name)")
+    rv.add_argument("--wait", type=float, default=0.0, help="seconds to wait for another run's store lock")
+    rv.add_argument("--json", action="store_true")
+    rv.set_defaults(fn=cmd_review)
 
     rp = sub.add_parser("report", help="write a self-contained HTML report of a run")
     rp.add_argument("--store", required=True)

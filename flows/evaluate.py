@@ -7,16 +7,16 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from fleetsift.scoring.evaluation import (hanley_mcneil_se, label_windows, outlier_baselines, read_labels, roc_auc,
-                                    roc_curve, tangent_vectors)
+from fleetsift.scoring.evaluation import (hanley_mcneil_se, ignored_windows, label_windows, outlier_baselines,
+                                          read_labels, roc_auc, roc_curve, tangent_vectors)
 from fleetsift.errors import InputError
 from fleetsift.profile import Profile
 from fleetsift.store import Store
 
 METRICS = ("riemann", "logeuclid", "euclid")
 BASELINES = ("isolation_forest", "local_outlier_factor")
-BASELINE_FEATURES = ("tangent vectors at the riemann baseline's Frechet mean M: upper triangle of "
-                     "logm(M^-1/2 X M^-1/2), off-diagonals x sqrt(2) (Barachant et al. 2012)")
+BASELINE_FEATURES = ("tangent vectors of each descriptor block at its riemann baseline's Frechet mean M, side by "
+                     "side: upper triangle of logm(M^-1/2 X M^-1/2), off-diagonals x sqrt(2) (Barachant et al. 2012)")
 
 
 def prepare(inbox: str, store: str, profile_path: str | None = None, progress: bool = False,
@@ -56,23 +56,23 @@ def prepare(inbox: str, store: str, profile_path: str | None = None, progress: b
     return fleet, prepared, bad
 
 
-def run_descriptors(store: str, run_id: str, inbox: str, profile_path: str | None = None) -> dict:
-    """The run's window descriptors (recomputed from the cache with the run's baseline), or the reason why not."""
-    from fleetsift.tasks import stages
+def run_descriptors(store: str, run_id: str) -> dict:
+    """The run's window features for the comparison detectors, from the descriptors its score stage kept (the
+    bank): tangent vectors of each descriptor block at that block's riemann mean, side by side. Or the reason why
+    there are none."""
+    from fleetsift.scoring.history import Bank
 
-    fleet, prepared, _ = prepare(inbox, store, profile_path)
-    if not prepared:
-        return {"note": "no recording of the inbox could be read"}
-    runs = Store(store).read("runs", run_id=run_id)
-    score = stages.run_score(prepared, fleet, store, run_id)
-    if len(runs) and score["baseline_id"] != runs["baseline_id"].iloc[0]:
-        return {"note": f"the inbox, profile or code changed since run {run_id} (baseline "
-                        f"{score['baseline_id']} now, {runs['baseline_id'].iloc[0]} then)"}
-    path = stages.run_descriptors(prepared, fleet, store, score)
-    a = Store.load_arrays(path)
-    base = Store.load_arrays(Path(store) / "baselines" / f"{score['baseline_id']}.npz")
-    return {"path": path, "descriptors": a["descriptors"], "recording_id": a["recording_id"].astype(str),
-            "window_index": a["window_index"], "mean": base["riemann.mean"]}
+    st = Store(store)
+    runs = st.read("runs", run_id=run_id)
+    if runs.empty:
+        return {"note": f"run {run_id} is not in the store"}
+    rel = runs["score_output"].iloc[0]
+    if not isinstance(rel, str) or not rel or not (st.root / rel).exists():
+        return {"note": f"run {run_id} has no stored window descriptors (written by an older release?)"}
+    bank = Bank.from_arrays(Store.load_arrays(st.root / rel))
+    base = Store.load_arrays(st.root / "baselines" / f"{runs['baseline_id'].iloc[0]}.npz")
+    X = np.hstack([tangent_vectors(bank.descriptors[b], base[f"{b}.riemann.mean"]) for b in bank.descriptors])
+    return {"features": X, "recording_id": bank.recording_id, "window_index": bank.window_index}
 
 
 def _baseline_scores(wm: pd.DataFrame, d: dict) -> dict[str, np.ndarray] | str:
@@ -80,10 +80,35 @@ def _baseline_scores(wm: pd.DataFrame, d: dict) -> dict[str, np.ndarray] | str:
     key = pd.MultiIndex.from_arrays([d["recording_id"], d["window_index"]])
     pos = pd.Series(np.arange(len(key)), index=key)
     want = pd.MultiIndex.from_arrays([wm["recording_id"].astype(str).to_numpy(), wm["window_index"].to_numpy()])
-    if len(key) != len(want) or not want.isin(key).all():
+    if not want.isin(key).all():
         return f"descriptors cover {len(key)} windows, the run scored {len(want)}: not the same windows"
-    X = tangent_vectors(d["descriptors"][pos.loc[want].to_numpy()], d["mean"])
-    return outlier_baselines(X)
+    return outlier_baselines(d["features"][pos.loc[want].to_numpy()])
+
+
+def review_labels(windows: pd.DataFrame, recordings: pd.DataFrame, reviews_store: str) -> np.ndarray:
+    """Per window of ``windows`` (one run, one metric): True where an engineer marked it (or its recording) a
+    fault, False where marked normal, NaN where nobody reviewed it. Windows are matched to verdicts by the
+    recording's content and the window centre (within half the hop), so a verdict given on one night labels the
+    same window scored on another."""
+    from fleetsift.scoring.history import Reviews, verdicts_for
+
+    rv = Store(reviews_store).read("reviews")
+    out = np.full(len(windows), np.nan)
+    if rv.empty or windows.empty:
+        return out
+    rv = rv.sort_values("reviewed_at", kind="stable")
+    mid = np.where(rv["window_index"].to_numpy() < 0, np.nan,
+                   (rv["t_start_s"].to_numpy(float) + rv["t_end_s"].to_numpy(float)) / 2)
+    reviews = Reviews(content=rv["content_hash"].to_numpy().astype(str), t_mid=mid,
+                      verdict=rv["verdict"].to_numpy().astype(str))
+    content = windows["recording_id"].map(dict(zip(recordings["recording_id"], recordings["content_hash"])))
+    t_mid = ((windows["t_start_s"] + windows["t_end_s"]) / 2).to_numpy(float)
+    hops = windows.groupby("recording_id")["t_start_s"].diff().dropna()
+    tol = 0.5 * float(hops.median()) if len(hops) else 1e-6
+    v = verdicts_for(content.fillna("").to_numpy().astype(str), t_mid, reviews, tol)
+    out[v == "fault"] = 1.0
+    out[v == "normal"] = 0.0
+    return out
 
 
 def _plot(curves: dict, aucs: dict, path: str) -> None:
@@ -107,26 +132,38 @@ def _plot(curves: dict, aucs: dict, path: str) -> None:
     plt.close(fig)
 
 
-def evaluate_store(store: str, run_id: str, labels_path: str, plot: str | None = None, inbox: str | None = None,
-                   profile: str | None = None, baselines: bool = True) -> dict:
+def evaluate_store(store: str, run_id: str, labels_path: str | None = None, plot: str | None = None,
+                   baselines: bool = True, reviews_store: str | None = None) -> dict:
     """ROC AUC (with the Hanley & McNeil standard error) of each metric's window scores of one stored run.
 
-    Windows whose centre lies inside a labelled interval are the positives. With ``baselines`` the same windows
-    are scored by IsolationForest and LocalOutlierFactor on tangent vectors of their descriptors (read back from
-    the cache: ``inbox`` defaults to the run's, ``profile`` to the inbox's profile.toml).
+    Windows whose centre lies inside a labelled interval are the positives. With ``reviews_store`` instead of a
+    labels file, engineers' verdicts in that store are the labels and only the windows they reviewed count
+    (faults positive, normal negative). With ``baselines`` the same windows are scored by IsolationForest and
+    LocalOutlierFactor on tangent vectors of the descriptors the run's score stage kept.
     """
+    if (labels_path is None) == (reviews_store is None):
+        raise InputError("evaluate", "labels", "a labels CSV or a store whose reviews are the labels (one of them)",
+                         "both" if labels_path else "neither")
     st = Store(store)
-    labels = read_labels(labels_path)
+    labels = read_labels(labels_path) if labels_path else None
     w = st.read("windows", run_id=run_id)
     w = w[w["score"].notna()]
     known = set(w["recording_id"])
     out: dict = {"auc": {}, "auc_se": {}, "n_windows": 0, "n_anomalous": 0, "run_id": run_id,
-                 "labels_without_recording": sorted(set(labels["recording"]) - known), "per_metric": {},
-                 "baselines": {}, "baselines_se": {}, "baseline_features": BASELINE_FEATURES}
+                 "labels": "reviews" if labels is None else "file",
+                 "labels_without_recording": [] if labels is None else sorted(set(labels["recording"]) - known),
+                 "per_metric": {}, "baselines": {}, "baselines_se": {}, "baseline_features": BASELINE_FEATURES}
+    recordings = st.read("recordings", run_id=run_id) if labels is None else None
     curves, y_ref, wm_ref = {}, None, None
     for m in METRICS:
         wm = w[w["metric"] == m].sort_values(["recording_id", "window_index"])
-        y = label_windows(wm, labels)
+        if labels is None:
+            yr = review_labels(wm, recordings, reviews_store)
+            wm = wm[~np.isnan(yr)]
+            y = yr[~np.isnan(yr)].astype(bool)
+        else:
+            wm = wm[~ignored_windows(wm, labels)]
+            y = label_windows(wm, labels)
         s = wm["score"].to_numpy()
         auc = roc_auc(y, s)
         out["auc"][m] = auc
@@ -138,28 +175,23 @@ def evaluate_store(store: str, run_id: str, labels_path: str, plot: str | None =
                                 "recall": tp / y.sum() if y.sum() else None}
         out["n_windows"] = int(len(wm))
         out["n_anomalous"] = int(y.sum())
+        out["n_ignored"] = int((w["metric"] == m).sum() - len(wm))
         if auc is not None:
             curves[m] = roc_curve(y, s)
         y_ref, wm_ref = y, wm
-    if baselines and wm_ref is not None and len(wm_ref):
-        if inbox is None:
-            runs = st.read("runs", run_id=run_id)
-            inbox = str(runs["inbox"].iloc[0]) if len(runs) else ""
-        if not inbox or not Path(inbox).is_dir():
-            out["baselines_note"] = f"inbox {inbox!r} not found: no outlier baselines"
+    if baselines and wm_ref is not None and len(wm_ref) >= 3:
+        d = run_descriptors(store, run_id)
+        sc = d["note"] if "note" in d else _baseline_scores(wm_ref, d)
+        if isinstance(sc, str):
+            out["baselines_note"] = sc
         else:
-            d = run_descriptors(store, run_id, inbox, profile)
-            sc = d["note"] if "note" in d else _baseline_scores(wm_ref, d)
-            if isinstance(sc, str):
-                out["baselines_note"] = sc
-            else:
-                for name, s in sc.items():
-                    auc = roc_auc(y_ref, s)
-                    out["baselines"][name] = auc
-                    out["baselines_se"][name] = (hanley_mcneil_se(auc, int(y_ref.sum()), int((~y_ref).sum()))
-                                                 if auc is not None else None)
-                    if auc is not None:
-                        curves[name] = roc_curve(y_ref, s)
+            for name, s in sc.items():
+                auc = roc_auc(y_ref, s)
+                out["baselines"][name] = auc
+                out["baselines_se"][name] = (hanley_mcneil_se(auc, int(y_ref.sum()), int((~y_ref).sum()))
+                                             if auc is not None else None)
+                if auc is not None:
+                    curves[name] = roc_curve(y_ref, s)
     if plot and curves:
         _plot(curves, {**out["auc"], **out["baselines"]}, plot)
         out["plot"] = plot

@@ -1,8 +1,9 @@
 """What runs when on a night: the wiring shared by the Prefect flow (flows/nightly.py) and the direct path.
 
-No Prefect import here. The flow passes its tasks as `steps`; `CACHED_ONLY` passes the plain stage functions with
-`cached_only=True`, which raise `NotCached` before computing anything, so a night whose every output is already
-in the cache can be run and recorded without starting an orchestrator (see fleetsift.flows.cli.do_run).
+No Prefect import here. The flow passes its tasks as `steps`; `CACHED_ONLY` passes the plain stage functions, the
+per-recording ones with `cached_only=True`, which raise `NotCached` before computing anything. A night on which no
+recording needs reading, decoding or embedding (the fleet step alone may re-score, against a grown history, say,
+in seconds) is so run and recorded without starting an orchestrator (see fleetsift.flows.cli.do_run).
 """
 
 from __future__ import annotations
@@ -34,8 +35,7 @@ class Steps:
 
 
 CACHED_ONLY = Steps(tables=partial(stages.run_tables, cached_only=True),
-                    embed=partial(stages.run_embed, cached_only=True),
-                    score=partial(stages.run_score, cached_only=True), write=stages.run_write)
+                    embed=partial(stages.run_embed, cached_only=True), score=stages.run_score, write=stages.run_write)
 
 
 def _is_store(p: Path) -> bool:

@@ -297,7 +297,8 @@ tr.quarantined td{background:#fdf0ee}
 .thumbs{display:flex;gap:4px}.thumbs figure{margin:0;font-size:.75em;color:#526170;text-align:center}
 .drivers{min-width:15em}.bar{height:.7em;background:#b7472a;border-radius:2px;display:inline-block;
 vertical-align:middle;margin-right:.4em}
-.note{color:#7a5a2a;font-size:.85em}img{max-width:100%;display:block}
+.note{color:#7a5a2a;font-size:.85em}.verdict{font-size:.8em;font-weight:normal;padding:1px 6px;border-radius:3px;
+margin-left:6px}.verdict.normal{background:#e6f4ea;color:#1e5631}.verdict.fault{background:#fde8e8;color:#8a1c1c}img{max-width:100%;display:block}
 """
 
 
@@ -329,7 +330,71 @@ def _fleet_profile(run, profile: str | None):
     return prof, note
 
 
-def _body_key(w: pd.DataFrame, recs: pd.DataFrame, fleet_prof, prof_note: str, top_n: int) -> str:
+def window_verdicts(st: Store, prim: pd.DataFrame, recs: pd.DataFrame) -> dict[tuple[str, int], dict]:
+    """Engineers' verdicts on this run's windows (given on any night, matched by recording content and window
+    centre): (recording, window index) -> the latest review row."""
+    from fleetsift.scoring.history import Reviews, verdicts_for
+
+    rv = st.read("reviews")
+    if rv.empty or prim.empty:
+        return {}
+    rv = rv.sort_values("reviewed_at", kind="stable").reset_index(drop=True)
+    mid = np.where(rv["window_index"].to_numpy() < 0, np.nan,
+                   (rv["t_start_s"].to_numpy(float) + rv["t_end_s"].to_numpy(float)) / 2)
+    content = prim["recording_id"].map(dict(zip(recs["recording_id"], recs["content_hash"]))).fillna("")
+    t_mid = ((prim["t_start_s"] + prim["t_end_s"]) / 2).to_numpy(float)
+    hops = prim.sort_values("t_start_s").groupby("recording_id")["t_start_s"].diff().dropna()
+    tol = 0.5 * float(hops.median()) if len(hops) else 1e-6
+    out = {}
+    for i, row in rv.iterrows():  # newest last: a later review overwrites
+        one = Reviews(content=np.array([row["content_hash"]]), t_mid=mid[i:i + 1], verdict=np.array([row["verdict"]]))
+        hit = verdicts_for(content.to_numpy().astype(str), t_mid, one, tol) != ""
+        for r in prim[hit].itertuples():
+            out[(r.recording_id, int(r.window_index))] = {"verdict": row["verdict"], "note": row["note"] or "",
+                                                          "reviewer": row["reviewer"] or "",
+                                                          "reviewed_at": str(row["reviewed_at"])[:19]}
+    return out
+
+
+def _verdict_html(v: dict | None) -> str:
+    if not v:
+        return ""
+    who = f" by {_e(v['reviewer'])}" if v["reviewer"] else ""
+    note = f": {_e(v['note'])}" if v["note"] else ""
+    return f"<span class='verdict {_e(v['verdict'])}'>reviewed {_e(v['verdict'])}{who}, {_e(v['reviewed_at'])}{note}</span>"
+
+
+def _references_html(st: Store, run) -> str:
+    """Which references this run's scores were measured against (the baseline's record)."""
+    import json
+
+    path = st.root / "baselines" / f"{run['baseline_id']}.npz"
+    if not run["baseline_id"] or not path.exists():
+        return ""
+    a = Store.load_arrays(path)
+    if "info" not in a:
+        return ""
+    info = json.loads(str(a["info"]))
+    src = {"history": "earlier nights' windows (the fleet's history)",
+           "batch": "this run's own windows, robustly trimmed (a first night, or a profile change)",
+           "recordings": "the recordings the profile lists"}.get(info["source"], info["source"])
+    runs = info.get("reference_runs") or []
+    extra = []
+    if runs:
+        extra.append(f"from {len(runs)} earlier run{'s' if len(runs) != 1 else ''} ({', '.join(_e(r) for r in runs[-3:])}"
+                     + (", ..." if len(runs) > 3 else "") + ")")
+    if info["source"] == "history" and info.get("tonight"):
+        extra.append("joined by this run's own windows while the history is thin")
+    if info.get("n_approved"):
+        extra.append(f"{info['n_approved']} windows reviewed as normal")
+    ridges = ", ".join(f"{_e(b)} {v:.3g}" for b, v in info.get("ridges", {}).items())
+    return (f"<p class='meta' id='references'>References: {src}; {info['n_references']} windows of "
+            f"{info['n_reference_recordings']} recordings" + ("; " + "; ".join(extra) if extra else "")
+            + f". Neighbours k = {info.get('k')}; descriptor noise floor (ridge) {ridges}.</p>")
+
+
+def _body_key(w: pd.DataFrame, recs: pd.DataFrame, fleet_prof, prof_note: str, top_n: int,
+              verdicts: dict | None = None) -> str:
     """What the windows and timelines sections show: the run's window rows (not its id), the recordings it read
     (where, with what content and outcome), the profile they are read with, and this module's code."""
     import hashlib
@@ -347,7 +412,8 @@ def _body_key(w: pd.DataFrame, recs: pd.DataFrame, fleet_prof, prof_note: str, t
     for pth in recs.get("path", pd.Series(dtype=str)).astype(str):
         f = Path(pth) / "profile.toml" if pth else None
         own.append(f"{f.stat().st_mtime_ns}:{f.stat().st_size}" if f is not None and f.is_file() else "")
-    h.update(repr((fleet_prof.digest() if fleet_prof is not None else None, prof_note, int(top_n), own)).encode())
+    h.update(repr((fleet_prof.digest() if fleet_prof is not None else None, prof_note, int(top_n), own,
+                   sorted((verdicts or {}).items()))).encode())
     return h.hexdigest()[:24]
 
 
@@ -375,6 +441,7 @@ def write_report(store: str, run_id: str | None, out: str, as_of: int | None = N
     valid = prim[prim["score"].notna()]
     thresholds = {m: float(g["threshold"].iloc[0]) for m, g in w.groupby("metric") if len(g)}
     fleet_prof, prof_note = _fleet_profile(run, profile)
+    verdicts = window_verdicts(st, prim, recs)
 
     paths = {r.recording_id: (r.path or (str(Path(str(run["inbox"])) / r.recording_id) if run["inbox"] else ""))
              for r in recs.itertuples()}
@@ -405,8 +472,10 @@ def write_report(store: str, run_id: str | None, out: str, as_of: int | None = N
             ("windows scored", len(valid)), ("windows flagged", n_flag),
             ("flagged spans", sum(len(flagged_spans(g)) for _, g in valid.groupby("recording_id")))))
         + "</div>",
-        "<p class='meta'>Thresholds (median + c &times; 1.4826 MAD of the baseline's leave-one-out scores): "
-        + ", ".join(f"{_e(m)} {v:.4g}" for m, v in sorted(thresholds.items())) + "</p>",
+        "<p class='meta'>Scores are robust z-scores: (distance - median) / (1.4826 &times; MAD) of the "
+        "references' own leave-one-out distances, so 3 is about three standard deviations beyond typical normal "
+        "operation. Flagged above c = " + ", ".join(sorted({f"{v:g}" for v in thresholds.values()})) + ".</p>",
+        _references_html(st, run),
     ]
     if prof_note:
         parts.append(f"<p class='note'>{_e(prof_note)}</p>")
@@ -436,7 +505,7 @@ def write_report(store: str, run_id: str | None, out: str, as_of: int | None = N
                                           for r in quar.itertuples()) + "</ul>")
 
     # --- windows worth a look and timelines: the costly part (video thumbnails, plots), cached by what it shows
-    body_path = st.cache_path("report", _body_key(w, recs, fleet_prof, prof_note, top_n)).with_suffix(".html")
+    body_path = st.cache_path("report", _body_key(w, recs, fleet_prof, prof_note, top_n, verdicts)).with_suffix(".html")
     if body_path.exists():
         parts.append(body_path.read_text(encoding="utf-8"))
     else:
@@ -490,12 +559,12 @@ def write_report(store: str, run_id: str | None, out: str, as_of: int | None = N
                              f"src='{traces_png(series, r.t_start_s, r.t_end_s, shares)}'>")
             else:
                 media.append(f"<p class='note'>{_e(note)}</p>")
-            ratio = r.score / r.threshold if r.threshold else float("nan")
+            vd = verdicts.get((r.recording_id, int(r.window_index)))
             parts.append(
                 f"<div class='card' id='window-{rank}' data-recording='{_e(r.recording_id)}'>"
                 f"<h3><span class='rank'>{rank}</span><a href='#{_anchor(r.recording_id)}'>{_e(r.recording_id)}</a>, "
-                f"{r.t_start_s:.1f}&ndash;{r.t_end_s:.1f} s &middot; score {r.score:.3f} "
-                f"({_fmt(ratio, '.2f')} &times; threshold)</h3><div class='row'>"
+                f"{r.t_start_s:.1f}&ndash;{r.t_end_s:.1f} s &middot; window {int(r.window_index)} &middot; score "
+                f"{r.score:.2f} (threshold {_fmt(r.threshold, 'g')}) {_verdict_html(vd)}</h3><div class='row'>"
                 f"<div class='drivers'><b>Driving channels</b> (share of the deviation){drivers}</div>"
                 f"<div>{''.join(media)}</div></div></div>")
 
@@ -518,13 +587,18 @@ def write_report(store: str, run_id: str | None, out: str, as_of: int | None = N
         tmp.replace(body_path)
 
     parts.append(
-        "<h2>How to read this report</h2><p>Each window of the common clock is described by an SPD matrix of its "
-        "standardised channels and scored by its distance on the SPD manifold to the k nearest windows of the "
-        "fleet's baseline of normal operation (never counting neighbours from its own recording within the "
-        "exclusion zone). A window is flagged when its score exceeds the threshold taken from the baseline's own "
-        "scores. The driving channels split the window's deviation from the baseline's mean by channel (the "
-        "energy of each channel's rows of the whitened log map). A high score says <i>unlike the baseline</i>, "
-        "not <i>faulty</i>.</p>"
+        "<h2>How to read this report</h2><p>Each window of the common clock is described, stream by stream, by an "
+        "SPD matrix of its standardised channels and scored by its distance on the SPD manifold to the fleet's "
+        "references of normal operation: by default the nearest window of each of the k nearest recordings, so "
+        "a behaviour counts as normal only where k recordings show it, and never a neighbour from the window's "
+        "own recording within the exclusion zone. From the second night on the references are earlier nights' "
+        "windows that were clearly normal, so a fault that recurs tonight is measured against last week's "
+        "operation. The score is the largest robust z over the streams; a window is flagged above c. The driving "
+        "channels split the window's deviation by channel (the energy of each channel's rows of the whitened log "
+        "map). A high score says <i>unlike the baseline</i>, not <i>faulty</i>. Record a verdict with "
+        "<code>fleetsift review --store STORE --run RUN --window RECORDING:INDEX --verdict normal|fault</code>: "
+        "a window reviewed normal joins the references and is not flagged again; one reviewed as a fault never "
+        "joins them.</p>"
         f"<p class='meta'>Written by fleetsift {_e(__version__)} from the store {_e(st.root)}.</p>")
     doc = ("<!doctype html><html lang='en'><head><meta charset='utf-8'>"
            "<meta name='viewport' content='width=device-width,initial-scale=1'>"

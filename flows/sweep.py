@@ -13,7 +13,10 @@ Grid file (TOML), every key optional:
     k = [1, 10]
     kind = ["oas", "rbf", "lagged"]
     metric = ["logeuclid", "euclid"]
-    ridge = [1e-2]             # optional: the descriptor's ridge (a noise floor on the standardised channels)
+    ridge = [1e-2, "auto"]     # optional: the descriptor's ridge (a noise floor on the standardised channels)
+
+Every point scores the batch as a first night would (tonight's windows, robustly trimmed): a sweep compares settings
+on one inbox, and a history fitted under one setting means nothing under another.
 """
 
 from __future__ import annotations
@@ -83,11 +86,13 @@ def parse_grid(data: dict, path: str, profile: Profile) -> dict:
         if not isinstance(vals, list) or not vals:
             raise InputError(path, key, "a non-empty list", repr(vals))
         for v in vals:
+            if key == "ridge" and v == "auto":
+                continue
             if key in ("window_s", "hop_s", "ridge"):
                 ok = isinstance(v, (int, float)) and not isinstance(v, bool) and math.isfinite(v) and v > 0
                 if ok and key == "window_s" and v * rate < 4:
                     raise InputError(path, key, f"windows of at least 4 samples at {rate:g} Hz", v)
-                want = "positive numbers" + (" (seconds)" if key != "ridge" else "")
+                want = "positive numbers" + (" (seconds)" if key != "ridge" else ' or "auto"')
             elif key == "k":
                 ok, want = isinstance(v, int) and not isinstance(v, bool) and v >= 1, "integers >= 1"
             elif key == "kind":
@@ -96,7 +101,7 @@ def parse_grid(data: dict, path: str, profile: Profile) -> dict:
                 ok, want = v in METRICS, f"values from {list(METRICS)}"
             if not ok:
                 raise InputError(path, key, want, repr(v))
-        out[key] = [float(v) if key in ("window_s", "hop_s", "ridge") else v for v in vals]
+        out[key] = [float(v) if key in ("window_s", "hop_s", "ridge") and v != "auto" else v for v in vals]
     return out
 
 
@@ -136,8 +141,11 @@ def point_profile(profile: Profile, point: dict) -> Profile:
         profile,
         windowing=dataclasses.replace(profile.windowing, window_s=float(point["window_s"]),
                                       hop_s=float(point["hop_s"])),
-        descriptor=dataclasses.replace(profile.descriptor, kind=point["kind"], ridge=float(point["ridge"])),
-        scoring=dataclasses.replace(profile.scoring, k=int(point["k"]), metric=point["metric"]))
+        descriptor=dataclasses.replace(profile.descriptor, kind=point["kind"],
+                                       ridge=point["ridge"] if point["ridge"] == "auto" else float(point["ridge"])),
+        scoring=dataclasses.replace(profile.scoring, k=int(point["k"]), metric=point["metric"]),
+        baseline=dataclasses.replace(profile.baseline, source="recordings" if profile.baseline.recordings
+                                     else "batch"))
 
 
 def score_point(prepared: list[dict], profile: Profile, point: dict, labels_path: str) -> dict:
@@ -150,10 +158,10 @@ def score_point(prepared: list[dict], profile: Profile, point: dict, labels_path
         recs = [stages.load_features(prof, p["tables"], p["embed"]) for p in prepared]
         res = fleet.score_fleet(
             recs, windowing=prof.windowing, descriptor=prof.descriptor, scoring_cfg=prof.scoring,
-            pca_dims={s.name: s.pca_dim for s in prof.video_streams()},
+            baseline_cfg=prof.baseline, pca_dims={s.name: s.pca_dim for s in prof.video_streams()},
             video_gaps={s.name: fleet.video_gap_s(s.sample_hz, prof.windowing.max_gap_s)
                         for s in prof.video_streams()},
-            baseline_recordings=list(prof.baseline.recordings) or None, metrics=(m,))
+            table_streams=stages.table_streams_of(prof), metrics=(m,))
         w = pd.concat([pd.DataFrame({"recording_id": ws.recording_id, "t_start_s": ws.t_start, "t_end_s": ws.t_end,
                                      "score": ws.scores[m], "flagged": ws.flagged[m]}) for ws in res.windows])
         w = w[w["score"].notna()]
@@ -161,7 +169,7 @@ def score_point(prepared: list[dict], profile: Profile, point: dict, labels_path
         auc = roc_auc(y, w["score"].to_numpy())
         row.update(auc=auc, auc_se=hanley_mcneil_se(auc, int(y.sum()), int((~y).sum())) if auc is not None else None,
                    n_windows=len(w), n_anomalous=int(y.sum()), n_flagged=int(w["flagged"].sum()),
-                   threshold=float(res.baseline.per_metric[m].threshold), error="")
+                   threshold=float(prof.scoring.threshold_c), error="")
     except (InputError, ValueError) as e:  # e.g. k larger than the neighbours a short recording allows
         row.update(auc=None, auc_se=None, n_windows=0, n_anomalous=0, n_flagged=0, threshold=None, error=str(e))
     row["elapsed_s"] = round(time.time() - t0, 2)
@@ -206,7 +214,7 @@ def plot_sweep(table: pd.DataFrame, base: dict, path: str) -> None:
         axes[0, 0].legend(fontsize=6, loc="lower left")
     fig.suptitle("AUC against each parameter" + (" (all combinations)" if full else
                  f" (one at a time around {base['kind']}, {base['metric']}, k={base['k']}, "
-                 f"window {base['window_s']:g} s, hop {base['hop_s']:g} s, ridge {base['ridge']:g})"), fontsize=8)
+                 f"window {base['window_s']:g} s, hop {base['hop_s']:g} s, ridge {base['ridge']})"), fontsize=8)
     fig.tight_layout()
     fig.savefig(path, dpi=90)
     plt.close(fig)

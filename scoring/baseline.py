@@ -1,8 +1,19 @@
 """Scoring windows against a baseline of normal behaviour on the SPD manifold.
 
-Pure numpy (no Prefect). A window's score is its kNN distance to the baseline's reference descriptors (k-th or
-mean of the k nearest, never counting itself nor same-recording neighbours within an exclusion zone) or its
-distance to the references' Fréchet mean. The threshold comes from the baseline's own leave-one-out scores.
+Pure numpy (no Prefect). A baseline is a set of reference window descriptors taken as normal; a window is scored
+against it in one of three ways (``method``):
+
+- ``knn``: the k-th (or mean of the k) nearest reference distance. Neighbours are counted in *recordings* by
+  default: the nearest window of each of the k nearest recordings, so a behaviour counts as normal only where k
+  recordings show it and a fault that recurs in fewer than k recordings of a night cannot hide behind itself.
+  Counted in *windows*, a tight cluster of k recurring faulty windows looks like dense normal operation.
+- ``density``: the local outlier factor (Breunig et al. 2000) with the SPD distance: a window's reachability
+  distance to its neighbours relative to theirs.
+- ``mean``: the distance to the references' Fréchet mean, the statistic of the Riemannian potato (Barachant et
+  al. 2013).
+
+A window never counts itself nor windows of its own recording within an exclusion zone. Every score is turned into
+a robust z against the references' own leave-one-out scores; the threshold is ``median + c * 1.4826 * MAD``.
 """
 
 from __future__ import annotations
@@ -11,13 +22,17 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from fleetsift.scoring import geometry
-from fleetsift.scoring.index import KNNIndex, knn
 from fleetsift.errors import InputError
+from fleetsift.profile import KNN_UNITS as UNITS
+from fleetsift.profile import SCORING_METHODS as METHODS
+from fleetsift.profile import Scoring as _DEF
+from fleetsift.scoring import geometry
+from fleetsift.scoring.index import KNNIndex
 
-__all__ = ["MAD_SCALE", "STATS", "exclusion_mask", "knn_scores", "mean_scores", "robust_z", "median_mad",
-           "threshold", "riemannian_potato", "Potato", "Baseline", "fit_baseline", "score", "attribute",
-           "top_channels", "OnlineScorer"]
+__all__ = ["MAD_SCALE", "STATS", "METHODS", "UNITS", "exclusion_mask", "neighbours", "knn_scores", "mean_scores",
+           "local_outlier_factors", "robust_z", "median_mad", "threshold", "riemannian_potato", "Potato", "Baseline",
+           "fit_baseline", "fit_references", "raw_scores", "score", "zscore", "attribute", "top_channels",
+           "OnlineScorer"]
 
 # MAD -> standard deviation for Gaussian data: 1 / Phi^-1(3/4) (common practice).
 MAD_SCALE = 1.4826
@@ -102,32 +117,83 @@ def _check_stat(stat: str) -> str:
     return stat
 
 
-def _stat(dist: np.ndarray, k: int, stat: str) -> np.ndarray:
+def _check_choice(name: str, value: str, choices) -> str:
+    if value not in choices:
+        raise InputError(_SRC, name, f"one of {tuple(choices)}", repr(value))
+    return value
+
+
+def _stat(dist: np.ndarray, k: int, stat: str, partial: bool = False) -> np.ndarray:
+    """k-th (or mean of the k) smallest of each row; NaN where a row has fewer than k finite distances, or, with
+    ``partial``, the last (mean of the) finite ones where it has at least one."""
     d = dist[:, :k]
-    full = np.all(np.isfinite(d), axis=1)
-    s = d[:, k - 1] if stat == "kth" else np.mean(np.where(np.isfinite(d), d, 0.0), axis=1)
-    return np.where(full, s, np.nan)
+    fin = np.isfinite(d)
+    n_fin = fin.sum(axis=1)
+    if stat == "kth":
+        last = d[np.arange(len(d)), np.maximum(n_fin - 1, 0)] if len(d) else np.zeros(0)
+        s = last if partial else d[:, k - 1]
+    else:
+        s = np.sum(np.where(fin, d, 0.0), axis=1) / np.maximum(n_fin, 1)
+    ok = n_fin > 0 if partial else n_fin == k
+    return np.where(ok, s, np.nan)
+
+
+def neighbours(queries, index: KNNIndex, k: int, unit: str = "window", ref_groups=None, exclude=None,
+               _self: bool = False) -> tuple[np.ndarray, np.ndarray]:
+    """The k neighbours of each query among the index's references -> ``(dist (n, k), idx (n, k))``.
+
+    ``unit="window"``: the k nearest allowed reference windows. ``unit="recording"``: the nearest allowed window of
+    each of the k nearest recordings (``ref_groups`` names each reference's recording), so one recording never
+    supplies two neighbours; the query's own recording can supply one, through its windows outside the exclusion
+    zone. Padded with ``inf`` / ``-1`` where fewer are allowed.
+    """
+    _check_choice("unit", unit, UNITS)
+    if unit == "window":
+        return index.query(queries, k, exclude=exclude, _self=_self)
+    if ref_groups is None:
+        raise InputError(_SRC, "ref_groups", "the recording of every reference (unit='recording')", "None")
+    return index.query_groups(queries, k, ref_groups, exclude=exclude, _self=_self)
 
 
 def knn_scores(queries, references, k: int, metric: str = "riemann", stat: str = "kth", exclude=None,
-               index: KNNIndex | None = None) -> np.ndarray:
+               index: KNNIndex | None = None, unit: str = "window", ref_groups=None) -> np.ndarray:
     """kNN score of each query -> ``(n,)``: the k-th (``stat="kth"``) or mean (``"mean"``) of its k exact
-    nearest-reference distances (:func:`fleetsift.scoring.index.knn`).
+    nearest-neighbour distances (see :func:`neighbours` for ``unit``).
 
-    ``exclude`` bool ``(n, m)`` as in :func:`exclusion_mask`. A query with fewer than k allowed references has
-    an undefined score: NaN. ``index`` may be a prebuilt :class:`~fleetsift.scoring.index.KNNIndex` over ``references``.
+    ``exclude`` bool ``(n, m)`` as in :func:`exclusion_mask`. In windows, a query with fewer than k allowed
+    references has an undefined score: NaN. In recordings, a query that has fewer than k allowed recordings (a
+    fleet of two, say) is scored by the ones it has; NaN only when it has none. ``index`` may be a prebuilt
+    :class:`~fleetsift.scoring.index.KNNIndex` over ``references``.
     """
     _check_stat(stat)
     if index is None:
-        dist, _ = knn(queries, references, k, metric, exclude=exclude)
-    else:
-        dist, _ = index.query(queries, k, exclude=exclude)
-    return _stat(dist, int(k), stat)
+        index = KNNIndex(references, metric)
+    dist, _ = neighbours(queries, index, int(k), unit, ref_groups, exclude)
+    return _stat(dist, int(k), stat, partial=unit == "recording")
 
 
 def mean_scores(queries, mean, metric: str = "riemann") -> np.ndarray:
     """Distance of each query ``(n, d, d)`` to a Fréchet mean ``(d, d)`` -> ``(n,)``."""
     return np.asarray(geometry.distance(queries, mean, metric)).reshape(-1)
+
+
+def local_outlier_factors(dist: np.ndarray, idx: np.ndarray, ref_kdist: np.ndarray, ref_lrd: np.ndarray
+                          ) -> np.ndarray:
+    """Local outlier factor of queries from their neighbours (Breunig, Kriegel, Ng & Sander 2000, Def. 5-7).
+
+    ``dist``/``idx (n, k)`` are each query's neighbour distances and reference indices (``-1`` padding ignored);
+    ``ref_kdist`` is every reference's k-distance, ``ref_lrd`` its local reachability density. The reachability
+    distance is ``max(k-distance(r), d(q, r))``; ``lrd(q) = 1 / mean reach``; ``LOF(q) = mean lrd(r) / lrd(q)``.
+    Like scikit-learn's LocalOutlierFactor, 1e-10 is added to the mean reachability distance so that duplicates
+    keep a finite density. NaN for a query without neighbours.
+    """
+    ok = idx >= 0
+    j = np.where(ok, idx, 0)
+    reach = np.where(ok, np.maximum(ref_kdist[j], dist), 0.0)
+    cnt = ok.sum(axis=1)
+    lrd = 1.0 / (reach.sum(axis=1) / np.maximum(cnt, 1) + 1e-10)
+    lof = np.where(ok, ref_lrd[j], 0.0).sum(axis=1) / np.maximum(cnt, 1) / lrd
+    return np.where(cnt > 0, lof, np.nan)
 
 
 @dataclass
@@ -181,11 +247,14 @@ def riemannian_potato(references, metric: str = "riemann", z_threshold: float = 
 class Baseline:
     """A reference set of normal windows and everything needed to score new windows against it.
 
-    ``kept`` is a mask over the input of :func:`fit_baseline`: windows not trimmed as the highest scorers.
-    ``ref_index`` are the input positions that became references (all kept ones, or an even subset of them
-    when ``max_refs`` applies). ``loo_scores`` are the references' leave-one-out scores against each other, from
-    which ``threshold = median + c * 1.4826 * MAD`` is taken; ``initial_scores`` are the first-pass scores of
-    every input window.
+    ``method`` says how a window is scored against the references (see :func:`raw_scores`); ``loo_scores`` are
+    the references' own leave-one-out scores, whose median and robust spread (``median``, ``scale = 1.4826 MAD``)
+    turn any score into a robust z (:func:`zscore`) and give ``threshold = median + c * scale`` (the same rule in
+    the score's own units: a window is flagged when its z exceeds ``c``). ``kept`` is a mask over the input of
+    :func:`fit_baseline` (windows not trimmed as the highest scorers), ``ref_index`` the input positions that
+    became references, ``initial_scores`` the first-pass scores of every input window. ``approved`` are windows an
+    engineer reviewed as normal: for ``knn`` a window at most as far from one of them as from its k-th neighbour
+    scores that distance instead (a reviewed false alarm stops recurring).
     """
 
     references: np.ndarray
@@ -204,11 +273,16 @@ class Baseline:
     c: float = 3.0
     median: float = float("nan")
     mad: float = float("nan")
+    method: str = "knn"
+    unit: str = "window"
+    scale: float = float("nan")
+    ref_kdist: np.ndarray = field(default_factory=lambda: np.zeros(0))
+    ref_lrd: np.ndarray = field(default_factory=lambda: np.zeros(0))
+    approved: np.ndarray | None = None
 
     def index(self) -> KNNIndex:
         """A :class:`~fleetsift.scoring.index.KNNIndex` over the references (whitened by ``mean`` for riemann)."""
-        return KNNIndex(self.references, self.metric,
-                            whiten_point=self.mean if self.metric == "riemann" else None)
+        return KNNIndex(self.references, self.metric, whiten_point=self.mean if self.metric == "riemann" else None)
 
 
 def _check_windows(descriptors, rec_ids, times):
@@ -224,20 +298,74 @@ def _check_windows(descriptors, rec_ids, times):
     return D, rec, t
 
 
-def fit_baseline(descriptors, rec_ids, times, k: int = 5, metric: str = "riemann", stat: str = "kth",
-                 zone_s: float = 30.0, trim_fraction: float = 0.1, c: float = 3.0,
-                 max_refs: int | None = None) -> Baseline:
-    """Fit a robust baseline from windows that are mostly normal.
+def _self_scores(D, rec, t, *, k, metric, stat, zone_s, method, unit, index=None, mean=None):
+    """Leave-one-out scores of a set of windows against the others -> (scores, mean, k-distances, lrds)."""
+    if method == "mean":
+        M = geometry.frechet_mean(D, metric) if mean is None else mean
+        return mean_scores(D, M, metric), M, np.zeros(0), np.zeros(0)
+    index = index if index is not None else KNNIndex(D, metric)
+    ex = exclusion_mask(rec, t, rec, t, zone_s)
+    dist, idx = neighbours(D, index, k, unit, rec, ex, _self=True)
+    s = _stat(dist, k, stat, partial=unit == "recording")
+    if method == "knn":
+        return s, mean, np.zeros(0), np.zeros(0)
+    # density: the k-distance of a window is its k-th neighbour distance (the farthest one it has in recordings).
+    kdist = _stat(dist, k, "kth", partial=unit == "recording")
+    kd = np.where(np.isfinite(kdist), kdist, np.inf)
+    ok = idx >= 0
+    j = np.where(ok, idx, 0)
+    reach = np.where(ok, np.maximum(kd[j], dist), 0.0)
+    lrd = 1.0 / (reach.sum(axis=1) / np.maximum(ok.sum(axis=1), 1) + 1e-10)
+    lrd = np.where(ok.any(axis=1), lrd, np.nan)
+    lof = local_outlier_factors(dist, idx, kd, np.nan_to_num(lrd))
+    return lof, mean, kd, lrd
 
-    1. Leave-one-out kNN score of every window against all others (with :func:`exclusion_mask`).
-    2. Trim the ``floor(trim_fraction * n)`` highest-scoring windows (NaN scores, i.e. windows without k allowed
+
+def fit_references(references, rec_ids, times, k: int = _DEF.k, metric: str = _DEF.metric,
+                   stat: str = _DEF.knn_stat, zone_s: float = _DEF.exclusion_s, c: float = _DEF.threshold_c,
+                   method: str = _DEF.method, unit: str = _DEF.knn_unit, approved=None) -> Baseline:
+    """A baseline from references taken as normal as they stand (no trimming): a fleet's history, chosen
+    recordings. Leave-one-out scores among the references give the robust scale and the threshold."""
+    geometry._check_metric(metric)
+    _check_stat(stat)
+    _check_choice("method", method, METHODS)
+    _check_choice("unit", unit, UNITS)
+    R, rr, rt = _check_windows(references, rec_ids, times)
+    k = int(k)
+    if len(R) < 2:
+        raise InputError(_SRC, "references", "at least 2 reference windows", f"{len(R)}")
+    M = geometry.frechet_mean(R, metric)
+    index = KNNIndex(R, metric, whiten_point=M if metric == "riemann" else None)
+    loo, _, kd, lrd = _self_scores(R, rr, rt, k=k, metric=metric, stat=stat, zone_s=zone_s, method=method,
+                                   unit=unit, index=index, mean=M)
+    if not np.any(np.isfinite(loo)):
+        raise InputError(_SRC, "descriptors", f"references with at least k={k} allowed neighbours "
+                         f"(exclusion zone {zone_s} s)", "none: lower k or the exclusion zone, or add recordings")
+    med, mad = median_mad(loo)
+    _, scale = _robust_scale(loo)
+    ap = None if approved is None or len(approved) == 0 else np.asarray(approved, np.float64)
+    return Baseline(references=R, ref_rec_ids=rr, ref_times=rt, mean=M, threshold=med + float(c) * scale, k=k,
+                    metric=metric, stat=stat, zone_s=float(zone_s), loo_scores=loo, kept=np.ones(len(R), bool),
+                    ref_index=np.arange(len(R)), initial_scores=loo, c=float(c), median=med, mad=mad,
+                    method=method, unit=unit, scale=scale, ref_kdist=kd, ref_lrd=lrd, approved=ap)
+
+
+def fit_baseline(descriptors, rec_ids, times, k: int = _DEF.k, metric: str = _DEF.metric, stat: str = _DEF.knn_stat,
+                 zone_s: float = _DEF.exclusion_s, trim_fraction: float = _DEF.trim_fraction,
+                 c: float = _DEF.threshold_c, max_refs: int | None = None, method: str = _DEF.method,
+                 unit: str = _DEF.knn_unit) -> Baseline:
+    """Fit a robust baseline from windows that are mostly normal (a first night, chosen recordings).
+
+    1. Leave-one-out score of every window against all others (``method``, with :func:`exclusion_mask`).
+    2. Trim the ``floor(trim_fraction * n)`` highest-scoring windows (NaN scores, i.e. windows without allowed
        neighbours, are never trimmed).
-    3. The remaining windows are the references (at most ``max_refs``, evenly spaced in input order).
-    4. Leave-one-out scores of the references against each other give ``threshold = median + c * 1.4826 * MAD``.
-    5. ``mean`` is the references' Fréchet mean for ``metric``.
+    3. The remaining windows are the references (at most ``max_refs``, evenly spaced in input order), fitted as
+       :func:`fit_references`: their leave-one-out scores give ``threshold = median + c * 1.4826 * MAD``.
     """
     geometry._check_metric(metric)
     _check_stat(stat)
+    _check_choice("method", method, METHODS)
+    _check_choice("unit", unit, UNITS)
     D, rec, t = _check_windows(descriptors, rec_ids, times)
     n = len(D)
     k = int(k)
@@ -245,8 +373,7 @@ def fit_baseline(descriptors, rec_ids, times, k: int = 5, metric: str = "riemann
         raise InputError(_SRC, "descriptors", "at least 2 windows to fit a baseline", f"{n}")
     if not 0.0 <= float(trim_fraction) < 1.0:
         raise InputError(_SRC, "trim_fraction", "a number in [0, 1)", trim_fraction)
-    ex = exclusion_mask(rec, t, rec, t, zone_s)
-    initial = knn_scores(D, D, k, metric, stat, exclude=ex)
+    initial = _self_scores(D, rec, t, k=k, metric=metric, stat=stat, zone_s=zone_s, method=method, unit=unit)[0]
     n_trim = int(np.floor(float(trim_fraction) * n))
     kept = np.ones(n, dtype=bool)
     if n_trim > 0:
@@ -255,27 +382,54 @@ def fit_baseline(descriptors, rec_ids, times, k: int = 5, metric: str = "riemann
     ref_index = np.flatnonzero(kept)
     if max_refs is not None and len(ref_index) > int(max_refs):
         ref_index = ref_index[np.unique(np.linspace(0, len(ref_index) - 1, int(max_refs)).round().astype(int))]
-    R, rr, rt = D[ref_index], rec[ref_index], t[ref_index]
-    M = geometry.frechet_mean(R, metric)
-    ex_r = exclusion_mask(rr, rt, rr, rt, zone_s)
-    index = KNNIndex(R, metric, whiten_point=M if metric == "riemann" else None)
-    loo = _stat(index.query(R, k, exclude=ex_r, _self=True)[0], k, stat)
-    if not np.any(np.isfinite(loo)):
-        raise InputError(_SRC, "descriptors", f"references with at least k={k} allowed neighbours "
-                         f"(exclusion zone {zone_s} s)", "none: lower k or the exclusion zone, or add recordings")
-    med, mad = median_mad(loo)
-    return Baseline(references=R, ref_rec_ids=rr, ref_times=rt, mean=M, threshold=threshold(loo, c), k=k,
-                    metric=metric, stat=stat, zone_s=float(zone_s), loo_scores=loo, kept=kept,
-                    ref_index=ref_index, initial_scores=initial, c=float(c), median=med, mad=mad)
+    bl = fit_references(D[ref_index], rec[ref_index], t[ref_index], k=k, metric=metric, stat=stat, zone_s=zone_s,
+                        c=c, method=method, unit=unit)
+    bl.kept, bl.ref_index, bl.initial_scores = kept, ref_index, initial
+    return bl
+
+
+def raw_scores(descriptors, rec_ids, times, baseline: Baseline, index: KNNIndex | None = None) -> np.ndarray:
+    """Scores ``(n,)`` of windows against the baseline in the method's own units, with the baseline's exclusion
+    zone (a window that is itself a reference never counts itself):
+
+    - ``knn``: the k-th (or mean of k) nearest-neighbour distance, in windows or in recordings
+      (:func:`knn_scores`), or the distance to the nearest approved window when that is smaller;
+    - ``density``: the local outlier factor of the window among the references (:func:`local_outlier_factors`);
+    - ``mean``: the distance to the references' Fréchet mean (the Riemannian potato's statistic).
+    NaN where the score is undefined (no allowed neighbour).
+    """
+    D, rec, t = _check_windows(descriptors, rec_ids, times)
+    bl = baseline
+    if bl.method == "mean":
+        return mean_scores(D, bl.mean, bl.metric)
+    index = index if index is not None else bl.index()
+    ex = exclusion_mask(rec, t, bl.ref_rec_ids, bl.ref_times, bl.zone_s)
+    dist, idx = neighbours(D, index, bl.k, bl.unit, bl.ref_rec_ids, ex)
+    if bl.method == "density":
+        return local_outlier_factors(dist, idx, bl.ref_kdist, np.nan_to_num(bl.ref_lrd))
+    s = _stat(dist, bl.k, bl.stat, partial=bl.unit == "recording")
+    if bl.approved is not None and len(bl.approved):
+        d_ap = KNNIndex(bl.approved, bl.metric).query(D, 1)[0][:, 0]
+        s = np.where(np.isfinite(s), np.minimum(s, d_ap), d_ap)
+    return s
 
 
 def score(descriptors, rec_ids, times, baseline: Baseline, index: KNNIndex | None = None) -> np.ndarray:
-    """kNN scores ``(n,)`` of windows against ``baseline.references``, with the baseline's exclusion zone (a
-    window that is itself a reference never counts itself). NaN where fewer than k references are allowed."""
-    D, rec, t = _check_windows(descriptors, rec_ids, times)
-    ex = exclusion_mask(rec, t, baseline.ref_rec_ids, baseline.ref_times, baseline.zone_s)
-    return knn_scores(D, baseline.references, baseline.k, baseline.metric, baseline.stat, exclude=ex,
-                      index=index if index is not None else baseline.index())
+    """The windows' scores in the method's own units (:func:`raw_scores`), compared with ``baseline.threshold``."""
+    return raw_scores(descriptors, rec_ids, times, baseline, index)
+
+
+def zscore(raw, baseline: Baseline) -> np.ndarray:
+    """Robust z of raw scores against the references' leave-one-out scores: ``(s - median) / (1.4826 MAD)``.
+
+    Dimensionless, so scores of different streams, metrics and methods compare; ``z > c`` is exactly
+    ``raw > baseline.threshold``.
+    """
+    raw = np.asarray(raw, dtype=np.float64)
+    if not baseline.scale > 0:
+        return np.where(raw == baseline.median, 0.0, np.where(raw > baseline.median, np.inf, -np.inf))
+    return (raw - baseline.median) / baseline.scale
+
 
 
 # ------------------------------------------------------------------------------------------- attribution
@@ -339,20 +493,35 @@ class OnlineScorer:
         self.times = np.asarray(baseline.ref_times, dtype=np.float64).copy()
         self.mean = np.array(baseline.mean, dtype=np.float64)
         self.n_seen = len(self.times)
+        self.kdist, self.lrd = baseline.ref_kdist, baseline.ref_lrd
 
     @property
     def references(self) -> np.ndarray:
         return self.index.references
 
     def score(self, descriptor, rec_id, t: float) -> float:
-        """kNN score of one window ``(d, d)`` against the current references (NaN if fewer than k allowed)."""
+        """Score of one window ``(d, d)`` against the current references, in the method's units (as
+        :func:`raw_scores`; NaN where undefined)."""
         bl = self.baseline
-        ex = exclusion_mask([rec_id], [t], self.rec_ids, self.times, bl.zone_s)
         X = np.asarray(descriptor, dtype=np.float64)[None]
-        return float(knn_scores(X, None, bl.k, bl.metric, bl.stat, exclude=ex, index=self.index)[0])
+        if bl.method == "mean":
+            return float(mean_scores(X, self.mean, bl.metric)[0])
+        ex = exclusion_mask([rec_id], [t], self.rec_ids, self.times, bl.zone_s)
+        if bl.method == "density":
+            dist, idx = neighbours(X, self.index, bl.k, bl.unit, self.rec_ids, ex)
+            return float(local_outlier_factors(dist, idx, self.kdist, np.nan_to_num(self.lrd))[0])
+        dist, _ = neighbours(X, self.index, bl.k, bl.unit, self.rec_ids, ex)
+        s = float(_stat(dist, bl.k, bl.stat, partial=bl.unit == "recording")[0])
+        if bl.approved is not None and len(bl.approved):
+            d_ap = float(KNNIndex(bl.approved, bl.metric).query(X, 1)[0][0, 0])
+            s = d_ap if not np.isfinite(s) else min(s, d_ap)
+        return s
 
     def update(self, descriptor, rec_id, t: float) -> None:
         """Add one window to the references and update the running mean."""
+        if self.baseline.method == "density":
+            # A new reference changes its neighbours' densities too: refit instead (fit_references).
+            raise InputError(_SRC, "method", "knn or mean for an online reference update", "density")
         X = np.asarray(descriptor, dtype=np.float64)
         self.index.add(X[None])
         self.rec_ids = np.concatenate([self.rec_ids, np.asarray([rec_id])])

@@ -10,7 +10,8 @@ from fleetsift.errors import InputError
 
 
 def read_labels(path: str) -> pd.DataFrame:
-    """Labels CSV with columns recording,start_s,end_s (seconds from the recording's first sample)."""
+    """Labels CSV with columns recording,start_s,end_s (seconds from the recording's first sample) and optionally
+    kind (free text; ``ignore`` marks an interval left out of the evaluation)."""
     try:
         df = pd.read_csv(path)
     except (OSError, pd.errors.ParserError, pd.errors.EmptyDataError) as e:
@@ -28,14 +29,34 @@ def read_labels(path: str) -> pd.DataFrame:
     return df
 
 
+IGNORE = "ignore"  # a labels row of this kind marks an interval left out of the evaluation
+
+
 def label_windows(windows: pd.DataFrame, labels: pd.DataFrame) -> np.ndarray:
-    """A window is anomalous when its centre lies inside a labelled interval of its recording."""
+    """A window is anomalous when its centre lies inside a labelled interval of its recording (rows whose
+    ``kind`` is ``ignore`` label nothing; see :func:`ignored_windows`)."""
     centre = ((windows["t_start_s"] + windows["t_end_s"]) / 2).to_numpy()
     rec = windows["recording_id"].astype(str).to_numpy()
     y = np.zeros(len(windows), bool)
-    for r, s, e in labels[["recording", "start_s", "end_s"]].itertuples(index=False):
+    rows = labels if "kind" not in labels.columns else labels[labels["kind"].astype(str) != IGNORE]
+    for r, s, e in rows[["recording", "start_s", "end_s"]].itertuples(index=False):
         y |= (rec == r) & (centre >= s) & (centre <= e)
     return y
+
+
+def ignored_windows(windows: pd.DataFrame, labels: pd.DataFrame) -> np.ndarray:
+    """Windows that overlap an interval labelled ``kind = ignore``: left out of the evaluation, neither normal nor
+    anomalous (a maintenance stop, a sensor swap, or the junction of two independently recorded pieces in a test
+    fleet). Overlap is strict: a window that ends where the interval starts is kept."""
+    out = np.zeros(len(windows), bool)
+    if "kind" not in labels.columns:
+        return out
+    t0, t1 = windows["t_start_s"].to_numpy(float), windows["t_end_s"].to_numpy(float)
+    rec = windows["recording_id"].astype(str).to_numpy()
+    for r, s, e in labels[labels["kind"].astype(str) == IGNORE][["recording", "start_s", "end_s"]].itertuples(
+            index=False):
+        out |= (rec == r) & (t0 < e) & (t1 > s)
+    return out
 
 
 def roc_auc(y: np.ndarray, score: np.ndarray) -> float | None:
@@ -70,36 +91,7 @@ def roc_curve(y: np.ndarray, score: np.ndarray) -> tuple[np.ndarray, np.ndarray]
     return fpr, tpr
 
 
-# --------------------------------------------------------------------------------- descriptors for baselines
-
-def window_descriptors(recs, *, center: np.ndarray, scale: np.ndarray, pca: dict, video_gaps: dict[str, float],
-                       windowing, descriptor) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """The SPD descriptor of every valid window, as the fleet step computed it for a stored baseline.
-
-    ``recs`` are :class:`fleetsift.scoring.fleet.RecordingFeatures`; ``center``/``scale``/``pca`` are a baseline's
-    channel standardisation and video PCA. Returns ``(descriptors (n, d, d), recording ids (n,), window indices
-    (n,))``; windows that straddle a gap are left out, as in the fleet step.
-    """
-    from fleetsift.featurizers import descriptors as desc
-    from fleetsift.scoring import fleet
-
-    Ds, rids, idx = [], [], []
-    for r in recs:
-        x, v, _ = fleet.channel_matrix(r, pca, video_gaps)
-        z = (x - center) / scale
-        wins, ok, _, _ = fleet.recording_windows(z, v, r.t, windowing.rate_hz, windowing.window_s,
-                                                 windowing.hop_s)
-        if not ok.any():
-            continue
-        d, _ = desc.describe(wins[ok], kind=descriptor.kind, include_mean=descriptor.include_mean,
-                             lags=descriptor.lags, ridge=descriptor.ridge)
-        Ds.append(d)
-        rids += [r.recording_id] * len(d)
-        idx.append(np.flatnonzero(ok))
-    if not Ds:
-        raise ValueError("no valid window to describe")
-    return np.concatenate(Ds), np.asarray(rids), np.concatenate(idx).astype(np.int64)
-
+# ------------------------------------------------------------------------------------ comparison detectors
 
 def tangent_vectors(descriptors: np.ndarray, mean: np.ndarray) -> np.ndarray:
     """Tangent-space features: ``vec(logm(M^-1/2 X M^-1/2))`` with off-diagonals weighted by sqrt(2).

@@ -1,22 +1,32 @@
 """Fleet-level computation: channels on the common clock -> windows -> SPD descriptors -> baseline -> scores.
 
-Pure functions (no Prefect). Inputs are the cached per-recording stage outputs; the output is everything the
-results store needs, per window and per metric.
+Pure functions (no Prefect). Inputs are the cached per-recording stage outputs and, from the second night on,
+earlier nights' banks (scoring.history); the output is everything the results store needs, per window and per
+metric, plus tonight's bank.
+
+A night is scored in a *descriptor space*: the channel standardisation, the video PCA basis and the noise floor
+(ridge) of each descriptor block. The first night (or a night whose profile changed what the descriptors are)
+fits the space on its own batch, robustly; later nights reuse it, so their windows compare with earlier nights'.
 """
 
 from __future__ import annotations
 
 import hashlib
+import warnings
 from dataclasses import dataclass, field
 
 import numpy as np
 
 from fleetsift.featurizers import descriptors as desc
+from fleetsift.profile import BaselineSpec
 from fleetsift.featurizers.pca import fit_pca
 from fleetsift.featurizers.tables import cut_windows, place_on_clock, window_starts
 from fleetsift.scoring import baseline
+from fleetsift.scoring.history import Bank, References, Reviews, assemble, guard_band, verdicts_for
 
 METRICS = ("riemann", "logeuclid", "euclid")
+# Bump when what a bank's descriptors mean changes, so no later night compares with banks of the old meaning.
+SPACE_VERSION = 1
 
 
 @dataclass
@@ -30,17 +40,83 @@ class RecordingFeatures:
     table_channels: list[str]
     # per video stream: (stream name, frame times on the common clock (offset applied, relative), embeddings)
     videos: list[tuple[str, np.ndarray, np.ndarray]] = field(default_factory=list)
+    content: str = ""  # the recording's content hash: its identity across nights (defaults to its name)
+
+    @property
+    def identity(self) -> str:
+        return self.content or self.recording_id
+
+
+@dataclass
+class Space:
+    """What turns a recording's channels into descriptors; shared by the nights of one history."""
+
+    key: str  # the profile sections and code the descriptors depend on (given by the caller)
+    channels: list[str]
+    center: np.ndarray
+    scale: np.ndarray
+    pca: dict[str, dict[str, np.ndarray]]  # per video stream
+    blocks: dict[str, list[int]]  # descriptor block (stream) -> channel positions
+    ridges: dict[str, float]  # block -> noise floor added to its window covariances
+
+    def to_arrays(self) -> dict[str, np.ndarray]:
+        out = {"space.key": np.array(self.key), "space.channels": np.array(self.channels),
+               "space.center": self.center, "space.scale": self.scale,
+               "space.blocks": np.array(list(self.blocks)),
+               "space.ridges": np.array([self.ridges[b] for b in self.blocks], np.float64)}
+        for b, ix in self.blocks.items():
+            out[f"space.block.{b}"] = np.asarray(ix, np.int64)
+        for name, p in self.pca.items():
+            for k, v in p.items():
+                out[f"space.pca.{name}.{k}"] = v
+        return out
+
+    @classmethod
+    def from_arrays(cls, a: dict[str, np.ndarray]) -> "Space":
+        blocks = [str(b) for b in a["space.blocks"]]
+        pca: dict[str, dict[str, np.ndarray]] = {}
+        for k, v in a.items():
+            if k.startswith("space.pca."):
+                name, part = k[len("space.pca."):].rsplit(".", 1)
+                pca.setdefault(name, {})[part] = v
+        return cls(key=str(a["space.key"]), channels=[str(c) for c in a["space.channels"]],
+                   center=a["space.center"], scale=a["space.scale"], pca=pca,
+                   blocks={b: a[f"space.block.{b}"].astype(int).tolist() for b in blocks},
+                   ridges={b: float(r) for b, r in zip(blocks, a["space.ridges"])})
+
+
+@dataclass
+class BaselineInfo:
+    """Which references tonight's scores were measured against (reported in the JSON, the store, the report)."""
+
+    source: str  # history | batch | recordings
+    n_references: int
+    n_reference_recordings: int
+    reference_runs: list[str]  # earlier runs whose windows are among the references
+    tonight: bool  # tonight's batch is among the references (a first night, or a thin history)
+    n_approved: int  # windows reviewed as normal that count as references
+    space_fitted: bool  # the descriptor space was fitted tonight (first night or a profile change)
+    ridges: dict[str, float]
+    k: int
+
+    def to_dict(self) -> dict:
+        return {"source": self.source, "n_references": self.n_references,
+                "n_reference_recordings": self.n_reference_recordings, "reference_runs": self.reference_runs,
+                "tonight": self.tonight, "n_approved": self.n_approved, "space_fitted": self.space_fitted,
+                "ridges": self.ridges, "k": self.k}
 
 
 @dataclass
 class FleetBaseline:
     baseline_id: str
-    channels: list[str]
-    center: np.ndarray
-    scale: np.ndarray
-    pca: dict[str, dict[str, np.ndarray]]  # per video stream
-    per_metric: dict[str, baseline.Baseline]
-    reference_recordings: list[str]
+    space: Space
+    per_block: dict[str, dict[str, baseline.Baseline]]  # block -> metric -> baseline
+    info: BaselineInfo
+    reference_recordings: list[str]  # names (tonight) or content ids (history) of the reference recordings
+
+    @property
+    def channels(self) -> list[str]:
+        return self.space.channels
 
 
 @dataclass
@@ -49,10 +125,11 @@ class WindowScores:
     t_start: np.ndarray
     t_end: np.ndarray
     valid: np.ndarray
-    scores: dict[str, np.ndarray]  # metric -> (n_windows,) (nan where invalid)
+    scores: dict[str, np.ndarray]  # metric -> (n_windows,) robust z, the largest over blocks (nan where invalid)
     flagged: dict[str, np.ndarray]
     top_channels: list[str]  # per window, "ch:share,..." for the primary metric ("" where invalid)
     shares: np.ndarray | None = None  # (n_windows, n_channels) primary-metric attribution
+    verdict: np.ndarray | None = None  # (n_windows,) engineer's verdict ("" where none)
 
 
 @dataclass
@@ -60,6 +137,8 @@ class FleetResult:
     baseline: FleetBaseline
     windows: list[WindowScores]
     channels: list[str]
+    bank: Bank
+    groups: dict[str, np.ndarray] = field(default_factory=dict)  # block -> channel of each descriptor dimension
 
 
 def video_gap_s(sample_hz: float, max_gap_s: float) -> float:
@@ -119,31 +198,80 @@ def recording_windows(x: np.ndarray, valid: np.ndarray, t: np.ndarray, rate_hz: 
     return wins, ok, t_start, t_end
 
 
-def _baseline_id(center, scale, pca, refs_by_metric) -> str:
-    h = hashlib.sha256()
-    for a in (center, scale):
-        h.update(np.ascontiguousarray(a, np.float64).tobytes())
-    for name in sorted(pca):
-        for k in sorted(pca[name]):
-            h.update(np.ascontiguousarray(pca[name][k], np.float64).tobytes())
-    for m in sorted(refs_by_metric):
-        h.update(np.ascontiguousarray(refs_by_metric[m].references).tobytes())
-        h.update(np.float64(refs_by_metric[m].threshold).tobytes())
-    return "b-" + h.hexdigest()[:12]
+def channel_blocks(names: list[str], n_table: int, table_streams: dict[str, str] | None,
+                   video_streams: list[str], per_stream: bool) -> dict[str, list[int]]:
+    """Descriptor blocks over the channel positions: one per stream (table channels by the stream that reads
+    them, video channels by their video stream), or one block ``"all"``."""
+    if not per_stream:
+        return {"all": list(range(len(names)))}
+    blocks: dict[str, list[int]] = {}
+    for i, name in enumerate(names):
+        if i < n_table:
+            b = (table_streams or {}).get(name, "tables")
+        else:
+            b = next(v for v in video_streams if name.startswith(f"{v}."))
+        blocks.setdefault(b, []).append(i)
+    return blocks
 
 
-def score_fleet(recs: list[RecordingFeatures], *, windowing, descriptor, scoring_cfg, pca_dims: dict[str, int],
-                video_gaps: dict[str, float], baseline_recordings: list[str] | None = None,
-                metrics=METRICS) -> FleetResult:
-    """Fit the fleet's baseline on the batch (robustly, or on the chosen recordings) and score every window."""
-    if not recs:
-        raise ValueError("no recordings to score")
-    base_ids = set(baseline_recordings or [r.recording_id for r in recs])
+def _ridge(descriptor, samples: np.ndarray) -> float:
+    return desc.baseline_ridge(samples) if descriptor.ridge == "auto" else float(descriptor.ridge)
+
+
+@dataclass
+class _Windows:
+    """Every recording's windows in one space: per block descriptors of the valid ones, and who they are."""
+
+    per_rec: list[tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]]  # (windows, valid, t_start, t_end)
+    D: dict[str, np.ndarray]
+    groups: dict[str, np.ndarray]
+    owner: np.ndarray  # (N,) position of the recording in `recs`
+    index: np.ndarray  # (N,) window index in its recording
+    content: np.ndarray
+    name: np.ndarray
+    t_mid: np.ndarray
+
+
+def _windows(recs, mats, valids, center, scale, blocks, ridges, windowing, descriptor, only=None) -> _Windows:
+    per, parts = [], {b: [] for b in blocks}
+    owner, index, t_mid = [], [], []
+    groups: dict[str, np.ndarray] = {}
+    for i, (r, x, v) in enumerate(zip(recs, mats, valids)):
+        z = (x - center) / scale
+        wins, ok, t0, t1 = recording_windows(z, v, r.t, windowing.rate_hz, windowing.window_s, windowing.hop_s)
+        if only is not None and r.recording_id not in only:
+            ok = np.zeros_like(ok)
+        per.append((wins, ok, t0, t1))
+        if not ok.any():
+            continue
+        for b, ix in blocks.items():
+            d, g = desc.describe(wins[ok][:, :, ix], kind=descriptor.kind, include_mean=descriptor.include_mean,
+                                 lags=descriptor.lags, ridge=ridges[b])
+            parts[b].append(d)
+            groups[b] = g
+        owner.append(np.full(int(ok.sum()), i))
+        index.append(np.flatnonzero(ok))
+        t_mid.append(((t0 + t1) / 2)[ok])
+    if not owner:
+        raise ValueError("no valid window in the batch (every window straddles a gap or is too short)")
+    owner_a = np.concatenate(owner)
+    return _Windows(per_rec=per, D={b: np.concatenate(p) for b, p in parts.items()}, groups=groups, owner=owner_a,
+                    index=np.concatenate(index).astype(np.int64),
+                    content=np.array([recs[i].identity for i in owner_a]),
+                    name=np.array([recs[i].recording_id for i in owner_a]), t_mid=np.concatenate(t_mid))
+
+
+def _fit_kwargs(scoring_cfg, metric: str) -> dict:
+    return dict(k=scoring_cfg.k, metric=metric, stat=scoring_cfg.knn_stat, zone_s=scoring_cfg.exclusion_s,
+                c=scoring_cfg.threshold_c, method=scoring_cfg.method, unit=scoring_cfg.knn_unit)
+
+
+def fit_space(recs, base_ids, *, windowing, descriptor, scoring_cfg, pca_dims, video_gaps, table_streams=None,
+              key: str = "") -> Space:
+    """Fit the descriptor space on the baseline recordings, robustly: PCA of their frames, channel
+    standardisation and noise floors on their samples, then (with ``trim_fraction``) the standardisation and
+    floors refitted on the windows the robust batch baseline keeps, so anomalies do not inflate them."""
     base = [r for r in recs if r.recording_id in base_ids]
-    if not base:
-        raise ValueError(f"none of the baseline recordings {sorted(base_ids)} is in this batch")
-
-    # PCA of each video stream's embeddings, fitted on the baseline recordings' frames.
     pca: dict[str, dict[str, np.ndarray]] = {}
     for name, dim in pca_dims.items():
         frames = [emb for r in base for (n, _, emb) in r.videos if n == name and len(emb)]
@@ -151,7 +279,33 @@ def score_fleet(recs: list[RecordingFeatures], *, windowing, descriptor, scoring
             raise ValueError(f"video stream {name!r}: no frames in the baseline recordings to fit its PCA")
         allf = np.concatenate(frames).astype(np.float64)
         pca[name] = fit_pca(allf, min(dim, allf.shape[0] - 1, allf.shape[1]))
+    mats, valids, names = _channels(recs, pca, video_gaps)
+    blocks = channel_blocks(names, len(recs[0].table_channels), table_streams, list(pca_dims),
+                            descriptor.per_stream)
+    is_base = [r.recording_id in base_ids for r in recs]
+    center, scale = fit_standardiser([m for m, b in zip(mats, is_base) if b], [v for v, b in zip(valids, is_base) if b])
+    z = np.concatenate([((m - center) / scale)[v] for m, v, b in zip(mats, valids, is_base) if b])
+    ridges = {b: _ridge(descriptor, z[:, ix]) for b, ix in blocks.items()}
+    if scoring_cfg.trim_fraction > 0:
+        w = _windows(recs, mats, valids, center, scale, blocks, ridges, windowing, descriptor, only=base_ids)
+        kept = np.ones(len(w.owner), bool)
+        for b in blocks:  # a window is kept when no block trims it
+            bl = baseline.fit_baseline(w.D[b], w.content, w.t_mid, trim_fraction=scoring_cfg.trim_fraction,
+                                       **_fit_kwargs(scoring_cfg, scoring_cfg.metric))
+            kept &= bl.kept
+        samples = []
+        for i, (wins, ok, _, _) in enumerate(w.per_rec):
+            sel = kept[w.owner == i]
+            if ok.any() and sel.any():
+                samples.append(wins[ok][sel].reshape(-1, wins.shape[2]) * scale + center)
+        if samples:
+            center, scale = fit_standardiser(samples, [np.ones(len(x), bool) for x in samples])
+            z = np.concatenate([(x - center) / scale for x in samples])
+            ridges = {b: _ridge(descriptor, z[:, ix]) for b, ix in blocks.items()}
+    return Space(key=key, channels=names, center=center, scale=scale, pca=pca, blocks=blocks, ridges=ridges)
 
+
+def _channels(recs, pca, video_gaps):
     mats, valids, names = [], [], None
     for r in recs:
         x, v, n = channel_matrix(r, pca, video_gaps)
@@ -162,92 +316,163 @@ def score_fleet(recs: list[RecordingFeatures], *, windowing, descriptor, scoring
         mats.append(x)
         valids.append(v)
     assert names is not None
-    is_base = np.array([r.recording_id in base_ids for r in recs])
+    return mats, valids, names
 
-    def describe_all(center, scale):
-        out = []
-        for r, x, v in zip(recs, mats, valids):
-            z = (x - center) / scale
-            wins, ok, t0, t1 = recording_windows(z, v, r.t, windowing.rate_hz, windowing.window_s, windowing.hop_s)
-            if ok.any():
-                d, groups = desc.describe(wins[ok], kind=descriptor.kind, include_mean=descriptor.include_mean,
-                                          lags=descriptor.lags, ridge=descriptor.ridge)
-            else:
-                d, groups = None, None
-            out.append((wins, ok, t0, t1, d, groups))
-        return out
 
-    def stack(per):
-        ds_, rec_ids, times, owner = [], [], [], []
-        for i, (wins, ok, t0, t1, d, _) in enumerate(per):
-            if d is None:
-                continue
-            ds_.append(d)
-            rec_ids += [i] * len(d)
-            times.append(((t0 + t1) / 2)[ok])
-            owner.append(np.full(len(d), i))
-        if not ds_:
-            raise ValueError("no valid window in the batch (every window straddles a gap or is too short)")
-        return np.concatenate(ds_), np.asarray(rec_ids), np.concatenate(times), np.concatenate(owner)
+def _baseline_id(space: Space, per_block: dict[str, dict[str, baseline.Baseline]], ref_ids: list[str]) -> str:
+    h = hashlib.sha256(space.key.encode())
+    for a in (space.center, space.scale):
+        h.update(np.ascontiguousarray(a, np.float64).tobytes())
+    for name in sorted(space.pca):
+        for k in sorted(space.pca[name]):
+            h.update(np.ascontiguousarray(space.pca[name][k], np.float64).tobytes())
+    h.update(repr(sorted(space.ridges.items())).encode())
+    h.update("\n".join(ref_ids).encode())
+    for b in sorted(per_block):
+        for m in sorted(per_block[b]):
+            bl = per_block[b][m]
+            h.update(np.ascontiguousarray(bl.references).tobytes())
+            h.update(np.float64(bl.threshold).tobytes())
+    return "b-" + h.hexdigest()[:12]
 
+
+def combine_shares(shares: dict[str, np.ndarray], z: dict[str, np.ndarray], blocks: dict[str, list[int]],
+                   n_channels: int) -> np.ndarray:
+    """Attribution over all channels: each block's shares weighted by its squared positive z (the blocks that
+    deviate most own the deviation); equal block weights where no block deviates."""
+    names = list(blocks)
+    Z = np.stack([np.nan_to_num(np.maximum(z[b], 0.0)) for b in names], axis=1) ** 2
+    tot = Z.sum(axis=1, keepdims=True)
+    Wt = np.where(tot > 0, Z / np.where(tot > 0, tot, 1.0), 1.0 / len(names))
+    out = np.zeros((len(Z), n_channels))
+    for j, b in enumerate(names):
+        out[:, blocks[b]] = Wt[:, j:j + 1] * shares[b]
+    return out
+
+
+def score_fleet(recs: list[RecordingFeatures], *, windowing, descriptor, scoring_cfg, baseline_cfg=BaselineSpec(),
+                pca_dims: dict[str, int], video_gaps: dict[str, float], table_streams: dict[str, str] | None = None,
+                space_key: str = "", parent_space: Space | None = None, history: list[Bank] | tuple = (),
+                reviews: Reviews | None = None, metrics=METRICS) -> FleetResult:
+    """Score every window of the batch against the fleet's baseline.
+
+    The references (``baseline_cfg.source``): ``history`` -- earlier nights' admitted windows (``history``, newest
+    first, in ``parent_space``), joined by tonight's batch while they hold fewer than k + 1 recordings; with no
+    usable history (a first night, or a profile change that makes ``space_key`` differ from the parent's) the
+    night is scored as ``batch``: tonight's windows, robustly trimmed. ``recordings``: the listed recordings'
+    windows, robustly trimmed. Tonight's own windows never serve as references under ``history``, so a fault
+    recurring tonight is measured against normal operation of earlier nights.
+    """
+    if not recs:
+        raise ValueError("no recordings to score")
+    source = baseline_cfg.source
+    if source == "recordings":
+        base_ids = set(baseline_cfg.recordings)
+        if not base_ids & {r.recording_id for r in recs}:
+            raise ValueError(f"none of the baseline recordings {sorted(base_ids)} is in this batch")
+    else:
+        base_ids = {r.recording_id for r in recs}
+    use_history = (source == "history" and parent_space is not None and parent_space.key == space_key
+                   and len(history) > 0)
+    space = parent_space if use_history else fit_space(
+        recs, base_ids, windowing=windowing, descriptor=descriptor, scoring_cfg=scoring_cfg, pca_dims=pca_dims,
+        video_gaps=video_gaps, table_streams=table_streams, key=space_key)
+    mats, valids, names = _channels(recs, space.pca, video_gaps)
+    if names != space.channels:
+        raise ValueError(f"channels {names} differ from the baseline's {space.channels}")
+    w = _windows(recs, mats, valids, space.center, space.scale, space.blocks, space.ridges, windowing, descriptor)
+    tol = 0.5 * windowing.hop_s
+    verdict = verdicts_for(w.content, w.t_mid, reviews, tol)
+    in_base = np.isin(w.name, list(base_ids))
+    k = int(scoring_cfg.k)
     primary = scoring_cfg.metric
-    # Pass 1: standardise on all baseline samples, score leave-one-out, find the windows to trim.
-    center, scale = fit_standardiser([m for m, b in zip(mats, is_base) if b], [v for v, b in zip(valids, is_base) if b])
-    per = describe_all(center, scale)
-    D, rec_idx, times, _ = stack(per)
-    in_base = is_base[rec_idx]
-    bl = baseline.fit_baseline(D[in_base], rec_idx[in_base], times[in_base], k=scoring_cfg.k, metric=primary,
-                              stat=scoring_cfg.knn_stat, zone_s=scoring_cfg.exclusion_s,
-                              trim_fraction=scoring_cfg.trim_fraction, c=scoring_cfg.threshold_c)
-    # Pass 2: refit the standardisation on the kept windows only, so planted/unknown anomalies do not inflate it.
-    if scoring_cfg.trim_fraction > 0:
-        base_pos = np.flatnonzero(in_base)
-        kept = np.zeros(len(D), bool)
-        kept[base_pos[bl.kept]] = True
-        kept_samples = []
-        for i, (wins, ok, t0, t1, d, _) in enumerate(per):
-            if d is None:
-                continue
-            sel = kept[rec_idx == i]
-            if is_base[i] and sel.any():
-                kept_samples.append(wins[ok][sel].reshape(-1, wins.shape[2]) * scale + center)
-        if kept_samples:
-            center, scale = fit_standardiser(kept_samples, [np.ones(len(x), bool) for x in kept_samples])
-        per = describe_all(center, scale)
-        D, rec_idx, times, _ = stack(per)
-        in_base = is_base[rec_idx]
 
-    per_metric: dict[str, baseline.Baseline] = {}
-    for m in metrics:
-        per_metric[m] = baseline.fit_baseline(D[in_base], rec_idx[in_base], times[in_base], k=scoring_cfg.k, metric=m,
-                                             stat=scoring_cfg.knn_stat, zone_s=scoring_cfg.exclusion_s,
-                                             trim_fraction=scoring_cfg.trim_fraction, c=scoring_cfg.threshold_c)
-    scores_all = {m: baseline.score(D, rec_idx, times, per_metric[m]) for m in metrics}
-    groups = next(g for (_, _, _, _, d, g) in per if d is not None)
-    shares = baseline.attribute(D, per_metric[primary].mean, groups, len(names))
+    refs: References | None = assemble(list(history), reviews, max_references=baseline_cfg.max_references,
+                                       tolerance_s=tol) if use_history else None
+    tonight = refs is None or refs.n_recordings < k + 1
+    if refs is not None and len(refs) < 2:
+        refs = None
+    per_block: dict[str, dict[str, baseline.Baseline]] = {}
+    for b in space.blocks:
+        approved = w.D[b][verdict == "normal"]
+        if refs is not None and len(refs.approved[b]):
+            approved = np.concatenate([refs.approved[b], approved])
+        per_block[b] = {}
+        for m in metrics:
+            kw = _fit_kwargs(scoring_cfg, m)
+            if tonight:
+                bl = baseline.fit_baseline(w.D[b][in_base], w.content[in_base], w.t_mid[in_base],
+                                           trim_fraction=scoring_cfg.trim_fraction,
+                                           max_refs=baseline_cfg.max_references, **kw)
+                if refs is not None:  # a thin history: tonight's robust references join it (once each)
+                    known = set(zip(refs.content.tolist(), np.round(refs.t_mid, 6).tolist()))
+                    new = np.array([(c_, t_) not in known for c_, t_ in
+                                    zip(bl.ref_rec_ids.tolist(), np.round(bl.ref_times, 6).tolist())], bool)
+                    bl = baseline.fit_references(np.concatenate([refs.descriptors[b], bl.references[new]]),
+                                                 np.concatenate([refs.content, bl.ref_rec_ids[new]]),
+                                                 np.concatenate([refs.t_mid, bl.ref_times[new]]), **kw)
+            else:
+                bl = baseline.fit_references(refs.descriptors[b], refs.content, refs.t_mid, **kw)
+            bl.approved = approved if len(approved) else None
+            per_block[b][m] = bl
 
-    bid = _baseline_id(center, scale, pca, per_metric)
-    fb = FleetBaseline(baseline_id=bid, channels=names, center=center, scale=scale, pca=pca, per_metric=per_metric,
-                       reference_recordings=sorted(base_ids))
+    z_by = {m: {b: baseline.zscore(baseline.raw_scores(w.D[b], w.content, w.t_mid, per_block[b][m]),
+                                   per_block[b][m]) for b in space.blocks} for m in metrics}
+    with warnings.catch_warnings():  # a window no block can score stays NaN
+        warnings.simplefilter("ignore", RuntimeWarning)
+        z = {m: np.nanmax(np.stack(list(z_by[m].values())), axis=0) for m in metrics}
+    c = float(scoring_cfg.threshold_c)
+    # An engineer's verdict on a window decides its flag: a reviewed false alarm is not flagged again.
+    flagged = {m: np.where(verdict == "normal", False, np.where(verdict == "fault", True, z[m] > c)) for m in metrics}
+    shares_b = {b: baseline.attribute(w.D[b], per_block[b][primary].mean, w.groups[b], len(ix))
+                for b, ix in space.blocks.items()}
+    shares = combine_shares(shares_b, z_by[primary], space.blocks, len(names))
+    # Only confidently normal windows teach later nights what normal is: a fault that scored just below the
+    # threshold tonight (partly masked in a first night's batch) must not become the references that hide it
+    # next week; nor may the edges of a flagged event (the guard band, one window length).
+    admitted = ~guard_band(flagged[primary], w.content, w.t_mid, windowing.window_s)
+    admitted &= z[primary] <= float(baseline_cfg.history_max_score)
+    admitted = np.where(verdict == "normal", True, np.where(verdict == "fault", False, admitted))
+    bank = Bank(content=w.content, recording_id=w.name, window_index=w.index, t_mid=w.t_mid, admitted=admitted,
+                descriptors=w.D)
+
+    if tonight:
+        ref_recs = sorted(set(w.name[in_base]))
+    else:
+        ref_recs = sorted(set(refs.content))
+    any_bl = per_block[next(iter(space.blocks))][primary]
+    info = BaselineInfo(source="history" if refs is not None else ("recordings" if source == "recordings" else "batch"),
+                        n_references=len(any_bl.references), n_reference_recordings=len(set(any_bl.ref_rec_ids)),
+                        reference_runs=refs.runs if refs is not None else [], tonight=tonight,
+                        n_approved=0 if any_bl.approved is None else len(any_bl.approved),
+                        space_fitted=not use_history, ridges=dict(space.ridges), k=k)
+    ref_ids = [] if refs is None else [f"{c_}:{t_:.6f}" for c_, t_ in zip(refs.content, refs.t_mid)]
+    fb = FleetBaseline(baseline_id=_baseline_id(space, per_block, ref_ids), space=space, per_block=per_block,
+                       info=info, reference_recordings=ref_recs)
+
     out: list[WindowScores] = []
-    for i, (r, (wins, ok, t0, t1, d, _)) in enumerate(zip(recs, per)):
+    for i, (r, (wins, ok, t0, t1)) in enumerate(zip(recs, w.per_rec)):
         nw = len(t0)
-        sel = rec_idx == i
+        sel = w.owner == i
         sc, fl = {}, {}
         for m in metrics:
             s = np.full(nw, np.nan)
-            s[ok] = scores_all[m][sel]
+            s[ok] = z[m][sel]
             sc[m] = s
-            fl[m] = np.where(ok, s > per_metric[m].threshold, False)
+            f = np.zeros(nw, bool)
+            f[ok] = flagged[m][sel]
+            fl[m] = f
         sh = np.full((nw, len(names)), np.nan)
         sh[ok] = shares[sel]
+        vd = np.full(nw, "", dtype=object)
+        vd[ok] = verdict[sel]
         tops = []
         for j in range(nw):
             if not ok[j]:
                 tops.append("")
                 continue
             order = np.argsort(-sh[j])[: scoring_cfg.top_channels]
-            tops.append(",".join(f"{names[c]}:{sh[j, c]:.3f}" for c in order))
+            tops.append(",".join(f"{names[c_]}:{sh[j, c_]:.3f}" for c_ in order))
         out.append(WindowScores(recording_id=r.recording_id, t_start=t0, t_end=t1, valid=ok, scores=sc, flagged=fl,
-                                top_channels=tops, shares=sh))
-    return FleetResult(baseline=fb, windows=out, channels=names)
+                                top_channels=tops, shares=sh, verdict=vd.astype(str)))
+    return FleetResult(baseline=fb, windows=out, channels=names, bank=bank, groups=w.groups)

@@ -119,6 +119,38 @@ class KNNIndex:
             dist[a:b], idx[a:b] = self._query_block(qp, qn, a, b, k, ex, approximate)
         return dist, idx
 
+    def query_groups(self, queries, k: int, groups, exclude=None, _self: bool = False):
+        """The closest allowed reference of each of the k nearest *groups* -> ``(dist (n, k), idx (n, k))``.
+
+        ``groups (m,)`` labels every reference (its recording, say); column j holds the distance to, and the index
+        of, the closest reference of the j-th nearest group, so no two columns of a row share a group. Exact: each
+        of the k rounds is an exact 1-NN search (:meth:`query`) that also excludes the groups already found for
+        that query. Rows with fewer than k allowed groups are padded with ``inf`` / ``-1``.
+        """
+        groups = np.asarray(groups).ravel()
+        m = self._r.n
+        if groups.shape != (m,):
+            raise InputError(_SRC, "groups", f"one group label per reference ({m})", f"shape {groups.shape}")
+        Q = self._r.X if _self else _as_spd(queries, "queries", 3)
+        n = len(Q)
+        ex = np.zeros((n, m), bool) if exclude is None else np.array(exclude, dtype=bool, copy=True)
+        if ex.shape != (n, m):
+            raise InputError(_SRC, "exclude", f"bool array of shape {(n, m)}", f"shape {ex.shape}")
+        k = int(k)
+        if k < 1:
+            raise InputError(_SRC, "k", "an integer >= 1", k)
+        _, codes = np.unique(groups, return_inverse=True)
+        dist = np.full((n, k), np.inf)
+        idx = np.full((n, k), -1, dtype=np.int64)
+        for j in range(k):
+            d1, i1 = self.query(Q, 1, exclude=ex, _self=_self)
+            hit = i1[:, 0] >= 0
+            if not hit.any():
+                break
+            dist[hit, j], idx[hit, j] = d1[hit, 0], i1[hit, 0]
+            ex[hit] |= codes[None, :] == codes[i1[hit, 0]][:, None]  # that group is found for that query
+        return dist, idx
+
     def _query_block(self, qp, qn, a, b, k, ex, approximate):
         r = self._r
         m = r.n

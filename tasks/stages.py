@@ -8,6 +8,7 @@ This module never imports Prefect: a night with nothing to compute runs these fu
 
 from __future__ import annotations
 
+import hashlib
 import json
 import sys
 import time
@@ -22,6 +23,7 @@ from fleetsift.profile import Profile, VideoStream
 from fleetsift.store import Store, code_version, stage_key
 from fleetsift.featurizers import recording, video, weights
 from fleetsift.scoring import fleet
+from fleetsift.scoring.history import Bank, Reviews, assemble
 # featurizers/embed.py (torch, torchvision) is imported only where frames are embedded: a night that reuses every
 # embedding never loads them.
 
@@ -41,7 +43,7 @@ def _embed_version() -> str:
 
 
 def _score_version() -> str:
-    return code_version(*(f"fleetsift.scoring.{m}" for m in ("fleet", "baseline", "geometry", "index")),
+    return code_version(*(f"fleetsift.scoring.{m}" for m in ("fleet", "baseline", "geometry", "index", "history")),
                         "fleetsift.featurizers.descriptors", "fleetsift.featurizers.pca")
 
 
@@ -181,12 +183,100 @@ def load_features(profile: Profile, tab: dict, emb: dict) -> fleet.RecordingFeat
         videos.append((stream.name, e["t"].astype(np.float64) + stream.clock_offset_s - meta["t0"], e["emb"]))
     return fleet.RecordingFeatures(recording_id=tab["recording_id"], t=arr["t"], table_values=arr["values"],
                                    table_valid=arr["valid"].astype(bool), table_channels=list(meta["channels"]),
-                                   videos=videos)
+                                   videos=videos, content=tab.get("content", ""))
+
+
+def space_key(profile: Profile) -> str:
+    """What a night's descriptors depend on besides the recordings: nights with the same key share a descriptor
+    space, so a later night can take its references from an earlier one's windows. Any change to the windowing,
+    the descriptor, a stream's settings (calibration, clock offset, PCA size, frame sampling, backbone) or the
+    featurizers' code starts a new history (that night is scored as a first night)."""
+    section = {k: profile.section(k) for k in ("windowing", "descriptor")}
+    section["streams"] = {n: profile.section(f"streams.{n}") for n in sorted(profile.streams)}
+    section["trim_fraction"] = profile.scoring.trim_fraction  # the space is fitted on the robustly kept windows
+    version = "/".join([_tables_version(), _embed_version(), code_version("fleetsift.featurizers.descriptors"),
+                        str(fleet.SPACE_VERSION)])
+    return stage_key("space", "", section, version)
+
+
+def table_streams_of(profile: Profile) -> dict[str, str]:
+    """Channel name -> the table stream that reads it (the descriptor blocks follow the streams)."""
+    return {ch: s.name for s in profile.table_streams() for ch in (s.channels or s.fields)}
+
+
+def load_history(store: Store, profile: Profile, key: str) -> tuple[fleet.Space | None, list[Bank]]:
+    """The banks of the last ``history_nights`` committed nights scored in descriptor space ``key``, newest first,
+    and that space (from the newest of them)."""
+    if profile.baseline.source != "history":
+        return None, []
+    runs = store.read("runs")
+    if runs.empty or "space_key" not in runs.columns:
+        return None, []
+    runs = runs[(runs["space_key"] == key) & runs["score_output"].notna() & (runs["score_output"] != "")]
+    runs = runs.sort_values("finished_at", ascending=False).head(profile.baseline.history_nights)
+    banks, space = [], None
+    for r in runs.itertuples(index=False):
+        path = store.root / str(r.score_output)
+        if not path.exists():  # a bank removed by hand: that night no longer counts
+            continue
+        a = Store.load_arrays(path)
+        if space is None:
+            space = fleet.Space.from_arrays(a)
+        banks.append(Bank.from_arrays(a, run_id=str(r.run_id)))
+    return space, banks
+
+
+def load_reviews(store: Store) -> tuple[Reviews | None, str]:
+    """Engineers' verdicts, oldest first (a later verdict on the same window wins), and their digest."""
+    rv = store.read("reviews")
+    if rv.empty:
+        return None, ""
+    rv = rv.sort_values("reviewed_at", kind="stable")
+    mid = np.where(rv["window_index"].to_numpy() < 0, np.nan,
+                   (rv["t_start_s"].to_numpy(float) + rv["t_end_s"].to_numpy(float)) / 2)
+    digest = stage_key("reviews", "", rv[["content_hash", "window_index", "verdict", "reviewed_at"]].astype(str)
+                       .to_dict("list"), "")
+    return Reviews(content=rv["content_hash"].to_numpy().astype(str), t_mid=mid,
+                   verdict=rv["verdict"].to_numpy().astype(str)), digest
+
+
+def _history_digest(space: fleet.Space | None, banks: list[Bank], reviews: Reviews | None, profile: Profile) -> str:
+    """What tonight's references will be, without scoring: the same references give the same scores."""
+    if space is None or not banks:
+        return ""
+    refs = assemble(banks, reviews, max_references=profile.baseline.max_references,
+                    tolerance_s=0.5 * profile.windowing.hop_s)
+    h = hashlib.sha256()
+    for a in (space.center, space.scale, refs.content.astype("U"), refs.t_mid):
+        h.update(np.ascontiguousarray(a).tobytes())
+    for b in sorted(refs.approved):
+        h.update(np.ascontiguousarray(refs.approved[b]).tobytes())
+    return h.hexdigest()[:24]
+
+
+def _save_baseline(store: Store, bl: fleet.FleetBaseline) -> None:
+    """Every baseline a score was measured against, with its references: STORE/baselines/<baseline_id>.npz."""
+    bpath = store.root / "baselines" / f"{bl.baseline_id}.npz"
+    if bpath.exists():
+        return
+    arrays = {**bl.space.to_arrays(), "reference_recordings": np.array(bl.reference_recordings, dtype=str),
+              "info": np.array(json.dumps(bl.info.to_dict()))}
+    for b, per_metric in bl.per_block.items():
+        first = next(iter(per_metric.values()))
+        arrays[f"{b}.references"] = first.references
+        arrays[f"{b}.reference_recordings"] = first.ref_rec_ids.astype(str)
+        for m, x in per_metric.items():
+            arrays[f"{b}.{m}.mean"] = x.mean
+            arrays[f"{b}.{m}.threshold"] = np.float64(x.threshold)
+            arrays[f"{b}.{m}.loo_scores"] = x.loo_scores
+    store.save_arrays(bpath, **arrays)
 
 
 def run_score(prepared: list[dict], profile: Profile, store_root: str, run_id: str, cached_only: bool = False,
               force: bool = False) -> dict:
-    """Fit the baseline on the batch and score every window; writes the run's window rows to a staging Parquet."""
+    """Score every window against the fleet's baseline (earlier nights' windows, or the batch on a first night);
+    writes the run's window rows to a staging Parquet and tonight's bank (descriptors, admission, descriptor
+    space) next to it, which later nights take their references from."""
     store = Store(store_root)
     # Recording ids and the inputs' cache keys (file names, not paths: a store moved or copied keeps its scores).
     keys = [[p["tables"]["recording_id"], Path(p["tables"]["path"]).name,
@@ -194,9 +284,15 @@ def run_score(prepared: list[dict], profile: Profile, store_root: str, run_id: s
     section = {k: profile.section(k) for k in ("windowing", "descriptor", "scoring", "baseline")}
     section["pca"] = {s.name: s.pca_dim for s in profile.video_streams()}
     section["offsets"] = {s.name: s.clock_offset_s for s in profile.video_streams()}
+    skey = space_key(profile)
+    parent, banks = load_history(store, profile, skey)
+    reviews, reviews_digest = load_reviews(store)
+    section["history"] = _history_digest(parent, banks, reviews, profile)
+    section["reviews"] = reviews_digest
     key = stage_key("score", json.dumps(keys), section, _score_version())
     out = store.cache_path("score", key).with_suffix(".parquet")
-    if out.exists() and out.with_suffix(".json").exists() and not force:
+    bank_path = out.with_suffix(".npz")
+    if out.exists() and out.with_suffix(".json").exists() and bank_path.exists() and not force:
         meta = json.loads(out.with_suffix(".json").read_text())
         return {"path": str(out), "reused": True, **meta}
     if cached_only:
@@ -205,22 +301,12 @@ def run_score(prepared: list[dict], profile: Profile, store_root: str, run_id: s
     pca_dims = {s.name: s.pca_dim for s in profile.video_streams()}
     gaps = {s.name: fleet.video_gap_s(s.sample_hz, profile.windowing.max_gap_s) for s in profile.video_streams()}
     res = fleet.score_fleet(recs, windowing=profile.windowing, descriptor=profile.descriptor,
-                            scoring_cfg=profile.scoring, pca_dims=pca_dims, video_gaps=gaps,
-                            baseline_recordings=list(profile.baseline.recordings) or None)
+                            scoring_cfg=profile.scoring, baseline_cfg=profile.baseline, pca_dims=pca_dims,
+                            video_gaps=gaps, table_streams=table_streams_of(profile), space_key=skey,
+                            parent_space=parent, history=banks, reviews=reviews)
     bl = res.baseline
-    bpath = store.root / "baselines" / f"{bl.baseline_id}.npz"
-    if not bpath.exists():
-        arrays = {"center": bl.center, "scale": bl.scale, "channels": np.array(bl.channels),
-                  "reference_recordings": np.array(bl.reference_recordings)}
-        for name, p in bl.pca.items():
-            for k, v in p.items():
-                arrays[f"pca.{name}.{k}"] = v
-        for m, b in bl.per_metric.items():
-            arrays[f"{m}.references"] = b.references
-            arrays[f"{m}.mean"] = b.mean
-            arrays[f"{m}.threshold"] = np.float64(b.threshold)
-            arrays[f"{m}.loo_scores"] = b.loo_scores
-        store.save_arrays(bpath, **arrays)
+    _save_baseline(store, bl)
+    c = float(profile.scoring.threshold_c)
     rows = []
     for w in res.windows:
         n = len(w.t_start)
@@ -228,43 +314,23 @@ def run_score(prepared: list[dict], profile: Profile, store_root: str, run_id: s
             rows.append(pd.DataFrame({
                 "recording_id": w.recording_id, "window_index": np.arange(n, dtype=np.int64),
                 "t_start_s": w.t_start, "t_end_s": w.t_end, "metric": m, "score": w.scores[m],
-                "threshold": float(bl.per_metric[m].threshold), "flagged": w.flagged[m].astype(bool),
+                "threshold": c, "flagged": w.flagged[m].astype(bool),
                 "top_channels": w.top_channels if m == profile.scoring.metric else [""] * n,
             }))
     df = pd.concat(rows, ignore_index=True)
     out.parent.mkdir(parents=True, exist_ok=True)
+    store.save_arrays(bank_path, **res.bank.to_arrays(), **bl.space.to_arrays(),
+                      **{f"groups.{b}": g for b, g in res.groups.items()})
     tmp = out.with_suffix(".tmp")
     df.to_parquet(tmp, index=False)
     tmp.replace(out)
-    meta = {"baseline_id": bl.baseline_id, "channels": res.channels,
-            "thresholds": {m: float(b.threshold) for m, b in bl.per_metric.items()}}
+    meta = {"baseline_id": bl.baseline_id, "channels": res.channels, "thresholds": {m: c for m in fleet.METRICS},
+            "baseline": bl.info.to_dict(), "space_key": skey,
+            "score_output": str(bank_path.relative_to(store.root))}
     tmp = out.with_suffix(".json.tmp")
     tmp.write_text(json.dumps(meta))
     tmp.replace(out.with_suffix(".json"))
     return {"path": str(out), "reused": False, **meta}
-
-
-def run_descriptors(prepared: list[dict], profile: Profile, store_root: str, score: dict) -> str:
-    """Save the window descriptors of a score run next to its parquet, as ``<score>.descriptors.npz`` with
-    ``descriptors (n, d, d)``, ``recording_id (n,)`` and ``window_index (n,)`` (valid windows only).
-
-    They are recomputed from the cached stage outputs with the run's stored baseline (standardisation and PCA),
-    which is exactly how the fleet step described them; evaluation uses them for vector-space baselines.
-    """
-    from fleetsift.scoring.evaluation import window_descriptors
-
-    out = Path(score["path"]).with_suffix(".descriptors.npz")
-    if out.exists():
-        return str(out)
-    store = Store(store_root)
-    b = Store.load_arrays(store.root / "baselines" / f"{score['baseline_id']}.npz")
-    pca = {s.name: {k: b[f"pca.{s.name}.{k}"] for k in ("mean", "components")} for s in profile.video_streams()}
-    gaps = {s.name: fleet.video_gap_s(s.sample_hz, profile.windowing.max_gap_s) for s in profile.video_streams()}
-    recs = [load_features(profile, p["tables"], p["embed"]) for p in prepared]
-    D, rids, idx = window_descriptors(recs, center=b["center"], scale=b["scale"], pca=pca, video_gaps=gaps,
-                                      windowing=profile.windowing, descriptor=profile.descriptor)
-    store.save_arrays(out, descriptors=D, recording_id=rids, window_index=idx)
-    return str(out)
 
 
 def run_write(store_root: str, run_id: str, started_at: float, profile: Profile, code_ver: str,
@@ -277,7 +343,11 @@ def run_write(store_root: str, run_id: str, started_at: float, profile: Profile,
     store.append("recordings", rec_df)
     n_windows = n_flagged = 0
     baseline_id = ""
+    extra = {"baseline_source": "", "n_references": None, "space_key": "", "score_output": ""}
     if score is not None:
+        extra = {"baseline_source": score.get("baseline", {}).get("source", ""),
+                 "n_references": score.get("baseline", {}).get("n_references"),
+                 "space_key": score.get("space_key", ""), "score_output": score.get("score_output", "")}
         w = pd.read_parquet(score["path"])
         w.insert(0, "run_id", run_id)
         w["baseline_id"] = score["baseline_id"]
@@ -292,7 +362,7 @@ def run_write(store_root: str, run_id: str, started_at: float, profile: Profile,
         "finished_at": pd.Timestamp(time.time(), unit="s", tz="UTC"), "code_version": code_ver,
         "profile_hash": profile.digest(), "baseline_id": baseline_id, "n_recordings": len(rec_df),
         "n_scored": int((rec_df["status"] == "scored").sum()), "n_quarantined": n_q, "n_windows": n_windows,
-        "n_flagged": n_flagged, "status": "ok" if n_q == 0 else "partial", "inbox": inbox,
+        "n_flagged": n_flagged, "status": "ok" if n_q == 0 else "partial", "inbox": inbox, **extra,
     }])
     store.append("runs", runs)
     return {"version": store.version("runs"), "windows_version": store.version("windows")}

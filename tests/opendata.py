@@ -188,3 +188,102 @@ def build_fleet(out_dir: str | Path, n_recordings: int = 4, normal_cases: int = 
     labels = out / "labels.csv"
     intervals.to_csv(labels, index=False)
     return BuiltFleet(inbox=out, labels=labels, recordings=names, intervals=intervals)
+
+
+# --------------------------------------------------------------------------------------- pairs of classes as fleets
+
+CLASSES = ("Standing", "Walking", "Running", "Badminton")
+# The default profile but for the clock rate: the watch logs at 10 Hz, so that is the common clock.
+PAIR_PROFILE = """# BasicMotions (UEA archive, Bagnall et al. 2018) as a fleet: a watch IMU at ~10 Hz. Default settings.
+[windowing]
+rate_hz = 10.0
+
+[streams.imu]
+kind = "table"
+file = "imu.csv"
+channels = [{channels}]
+"""
+
+
+@dataclass
+class Night:
+    inbox: Path
+    labels: Path
+    recordings: list[str]
+
+
+def build_pair_nights(out_dir: str | Path, normal: str, anomaly: str, seed: int = 0, nights: int = 2,
+                      cases: tuple[int, ...] = (3, 3, 2, 2), recurring: int = 3, jitter_s: float = 0.01,
+                      profile: str = PAIR_PROFILE) -> list[Night]:
+    """Nights of a fleet whose normal operation is one class and whose fault is another, each night an inbox.
+
+    Each recording of a night is ``cases[i]`` whole cases of the normal class, drawn without replacement across
+    all nights (no night sees another night's normal cases); in each of the first ``recurring`` recordings of every
+    night one whole case of the anomaly class is inserted between two normal ones (the same fault recurring in
+    several recordings of one night). With the default ``cases`` two nights use all 20 normal cases of a class.
+    ``labels.csv`` marks each inserted case (``kind`` = the class) and, as ``kind = ignore``, every junction between
+    two cases: a window across a junction mixes two independently recorded cases, which no vehicle does, so it is
+    neither normal operation nor the fault and the evaluation leaves it out.
+    """
+    X, y = load_basicmotions()
+    if normal not in CLASSES or anomaly not in CLASSES or normal == anomaly:
+        raise InputError(NAME, "classes", f"two different classes of {CLASSES}", (normal, anomaly))
+    rng = np.random.default_rng(seed)
+    normal_pool = list(rng.permutation(np.flatnonzero(y == normal)))
+    anomaly_pool = list(rng.permutation(np.flatnonzero(y == anomaly)))
+    if nights * sum(cases) > len(normal_pool) or nights * recurring > len(anomaly_pool):
+        raise InputError(NAME, "cases", f"at most {len(normal_pool)} normal cases over all nights",
+                         nights * sum(cases))
+    n_len = X.shape[2]
+    out = []
+    for night in range(nights):
+        inbox = Path(out_dir) / f"night-{night + 1}"
+        inbox.mkdir(parents=True, exist_ok=True)
+        (inbox / "profile.toml").write_text(profile.format(channels=", ".join(f'"{c}"' for c in CHANNELS)),
+                                            encoding="utf-8")
+        rows, names = [], []
+        for i, n_cases in enumerate(cases):
+            seq = [(int(normal_pool.pop()), False) for _ in range(n_cases)]
+            if i < recurring:
+                seq.insert(int(rng.integers(1, len(seq))), (int(anomaly_pool.pop()), True))
+            data = np.concatenate([X[j].T for j, _ in seq])
+            t = np.arange(len(data)) / RATE_HZ + rng.normal(0.0, jitter_s, len(data))
+            t = np.maximum.accumulate(t)
+            epoch = 1.7e9 + 86400.0 * night + 3600.0 * i
+            name = f"n{night + 1}-watch-{i + 1:02d}"
+            (inbox / name).mkdir(exist_ok=True)
+            pd.DataFrame({"t": np.round(epoch + t, 4), **{c: data[:, k] for k, c in enumerate(CHANNELS)}}).to_csv(
+                inbox / name / "imu.csv", index=False, float_format="%.6f")
+            t_first = np.round(epoch + t[0], 4) - epoch
+            for pos, (_, is_fault) in enumerate(seq):
+                s = pos * n_len / RATE_HZ - t_first
+                if is_fault:
+                    rows.append({"recording": name, "start_s": round(s, 3), "end_s": round(s + n_len / RATE_HZ, 3),
+                                 "kind": anomaly.lower()})
+                if pos:  # the junction with the case before
+                    rows.append({"recording": name, "start_s": round(s - 0.05, 3), "end_s": round(s + 0.05, 3),
+                                 "kind": "ignore"})
+            names.append(name)
+        labels = inbox / "labels.csv"
+        pd.DataFrame(rows, columns=["recording", "start_s", "end_s", "kind"]).to_csv(labels, index=False)
+        out.append(Night(inbox=inbox, labels=labels, recordings=names))
+    return out
+
+
+def score_nights(nights: list[Night], store: str | Path, comparison: bool = True) -> list[dict]:
+    """Run every night through the pipeline into one store (in-process, the stages without Prefect) and evaluate
+    each against its labels: per night the evaluate JSON (AUCs, standard errors, comparison detectors) plus the
+    run's baseline information."""
+    from fleetsift.flows import night as night_flow
+    from fleetsift.flows.evaluate import evaluate_store
+    from fleetsift.tasks import stages
+
+    plain = night_flow.Steps(tables=stages.run_tables, embed=stages.run_embed, score=stages.run_score,
+                             write=stages.run_write)
+    out = []
+    for n in nights:
+        res = night_flow.run_night(plain, inbox=str(n.inbox), store=str(store), progress=False)
+        ev = evaluate_store(str(store), res["run_id"], str(n.labels), baselines=comparison)
+        ev["baseline"] = res["score"]["baseline"]
+        out.append(ev)
+    return out

@@ -14,7 +14,7 @@ import pytest
 from fleetsift.scoring import baseline as scoring
 from fleetsift.scoring import fleet
 from fleetsift.scoring.evaluation import (hanley_mcneil_se, label_windows, outlier_baselines, read_labels, roc_auc,
-                                    roc_curve, tangent_vectors, window_descriptors)
+                                    roc_curve, tangent_vectors)
 from fleetsift.errors import InputError
 from fleetsift.profile import Descriptor, Profile, Scoring, TableStream, Windowing
 
@@ -139,21 +139,20 @@ def _recordings(rng, n_rec=3, seconds=40.0, rate=20.0, burst=None):
     return recs
 
 
-def test_window_descriptors_are_the_scored_ones():
+def test_bank_descriptors_are_the_scored_ones():
+    # The comparison detectors read the descriptors the score stage kept (its bank): they must be the windows the
+    # fleet step scored, in its order, and re-scoring them against the stored baseline gives its scores exactly.
     rng = np.random.default_rng(3)
     recs = _recordings(rng)
     win, desc, sc = Windowing(rate_hz=20.0, window_s=2.0, hop_s=1.0), Descriptor(), Scoring(exclusion_s=5.0)
     res = fleet.score_fleet(recs, windowing=win, descriptor=desc, scoring_cfg=sc, pca_dims={}, video_gaps={})
-    b = res.baseline
-    D, rids, idx = window_descriptors(recs, center=b.center, scale=b.scale, pca={}, video_gaps={},
-                                      windowing=win, descriptor=desc)
+    bank = res.bank
     for ws in res.windows:
-        assert idx[rids == ws.recording_id].tolist() == np.flatnonzero(ws.valid).tolist()
-    # Re-scoring the recomputed descriptors against the stored baseline gives the fleet step's scores exactly.
-    rec_idx = np.array([int(r[1:]) for r in rids])
-    centres = np.concatenate([((ws.t_start + ws.t_end) / 2)[ws.valid] for ws in res.windows])
+        assert bank.window_index[bank.recording_id == ws.recording_id].tolist() == np.flatnonzero(ws.valid).tolist()
     for m in ("riemann", "logeuclid", "euclid"):
-        again = scoring.score(D, rec_idx, centres, b.per_metric[m])
+        z = {b: scoring.zscore(scoring.score(bank.descriptors[b], bank.content, bank.t_mid, per[m]), per[m])
+             for b, per in res.baseline.per_block.items()}
+        again = np.max(np.stack(list(z.values())), axis=0)
         stored = np.concatenate([ws.scores[m][ws.valid] for ws in res.windows])
         np.testing.assert_allclose(again, stored, rtol=1e-10, atol=1e-12)
 
@@ -225,7 +224,7 @@ def test_score_point_detects_a_planted_burst_and_reports_errors(tmp_path):
     row = score_point(prepared, prof, pt, str(labels))
     assert row["error"] == "" and row["n_anomalous"] >= 4 and row["auc"] > 0.95
     assert 0 <= row["auc_se"] < 0.1
-    bad = score_point(prepared, prof, dict(pt, k=10_000), str(labels))
+    bad = score_point(prepared, prof, dict(pt, window_s=10_000.0), str(labels))  # no window fits: an error row
     assert bad["auc"] is None and bad["error"]
 
 

@@ -211,3 +211,163 @@ def test_online_running_mean_and_bound():
     for i in range(20, 40):
         onr.update(D[i], rec[i], t[i])
     assert float(geometry.distance(onr.mean, geometry.frechet_mean(D))) < 0.02
+
+
+# ------------------------------------------------------------------------ neighbours counted in recordings
+
+def _per_group_bruteforce(P, groups, k):
+    """For each row: the k smallest of (min distance to each group), with that group's argmin."""
+    out_d, out_i = [], []
+    for row in P:
+        best = {}
+        for j, (d, g) in enumerate(zip(row, groups)):
+            if np.isfinite(d) and (g not in best or d < best[g][0]):
+                best[g] = (d, j)
+        pick = sorted(best.values())[:k]
+        out_d.append([p[0] for p in pick] + [np.inf] * (k - len(pick)))
+        out_i.append([p[1] for p in pick] + [-1] * (k - len(pick)))
+    return np.array(out_d), np.array(out_i)
+
+
+@pytest.mark.parametrize("metric", ["riemann", "logeuclid", "euclid"])
+def test_query_groups_is_the_nearest_window_of_each_nearest_recording(metric):
+    from fleetsift.scoring.index import KNNIndex
+
+    D, rec, t, _, _ = fleet(12, n_rec=6, per_rec=25)
+    Q, R, g = D[:40], D[40:], rec[40:]
+    ex = np.random.default_rng(0).random((40, len(R))) < 0.3
+    d, i = KNNIndex(R, metric).query_groups(Q, 3, g, exclude=ex)
+    P = geometry.pairwise_distance(Q, R, metric)
+    P[ex] = np.inf
+    want_d, want_i = _per_group_bruteforce(P, g, 3)
+    np.testing.assert_allclose(d, want_d, atol=1e-10)
+    np.testing.assert_array_equal(i, want_i)
+    assert all(len(set(g[row])) == 3 for row in i)  # one neighbour per recording
+
+
+def test_recording_unit_sees_a_fault_recurring_in_fewer_than_k_recordings():
+    # The same fault (a stuck, 6x louder channel: nearly identical windows) in 5 windows of each of 2 recordings
+    # out of 6. Counted in windows, a faulty window finds 3 faulty neighbours (the 5 of the other recording),
+    # closer than normal windows are to theirs, and scores below normal; counted in recordings, its 3rd nearest
+    # recording is a normal one.
+    D, rec, t, _, _ = fleet(13, n_rec=6, per_rec=40)
+    fi = np.array([r * 40 + w for r in (1, 4) for w in range(20, 25)])
+    G = np.diag([1.0, 1.0, 6.0, 1.0, 1.0, 1.0])
+    F = G @ D[0] @ G
+    rng = np.random.default_rng(0)
+    T = rng.normal(0, 0.01, (len(fi), 6, 6))
+    D[fi] = geometry.exp_map(0.5 * (T + T.transpose(0, 2, 1)), F)
+    fault = np.zeros(len(D), bool)
+    fault[fi] = True
+    ex = sc.exclusion_mask(rec, t, rec, t, 15.0)
+    s_win = sc.knn_scores(D, D, 3, "riemann", "kth", ex, unit="window")
+    s_rec = sc.knn_scores(D, D, 3, "riemann", "kth", ex, unit="recording", ref_groups=rec)
+    from sklearn.metrics import roc_auc_score
+
+    assert roc_auc_score(fault, s_win) < 0.2  # masked: the fault looks denser than normal operation
+    assert roc_auc_score(fault, s_rec) == 1.0
+    # In recordings the k-th distance is never below the k-th distance in windows.
+    assert np.all(s_rec >= s_win - 1e-12)
+
+
+def test_recording_unit_with_fewer_recordings_than_k_uses_those_it_has():
+    D, rec, t, _, _ = fleet(14, n_rec=2, per_rec=20)
+    ex = sc.exclusion_mask(rec, t, rec, t, np.inf)  # only the other recording is allowed
+    s = sc.knn_scores(D, D, 3, "riemann", "kth", ex, unit="recording", ref_groups=rec)
+    P = geometry.pairwise_distance(D, D)
+    P[ex] = np.inf
+    np.testing.assert_allclose(s, P.min(axis=1), atol=1e-10)  # the one recording it has
+    with pytest.raises(InputError, match="ref_groups"):
+        sc.knn_scores(D, D, 3, "riemann", "kth", ex, unit="recording")
+
+
+# ------------------------------------------------------------------------------------- density and mean
+
+def test_density_scores_are_sklearns_local_outlier_factor():
+    # Breunig et al. 2000 as scikit-learn's LocalOutlierFactor computes it, on precomputed riemann distances:
+    # the references' leave-one-out factors and new windows' (novelty) factors.
+    from sklearn.neighbors import LocalOutlierFactor
+
+    D, rec, t, _, _ = fleet(15, n_rec=1, per_rec=60, outliers=[(0, 5, 1)])
+    R, Q = D[:45], D[45:]
+    ids = np.arange(60).astype(str)  # one recording per window: only the window itself is excluded
+    bl = sc.fit_references(R, ids[:45], np.zeros(45), k=5, metric="riemann", zone_s=0.0, method="density",
+                           unit="window")
+    lof = LocalOutlierFactor(n_neighbors=5, metric="precomputed").fit(geometry.pairwise_distance(R, R))
+    np.testing.assert_allclose(bl.loo_scores, -lof.negative_outlier_factor_, rtol=1e-7)
+    nov = LocalOutlierFactor(n_neighbors=5, metric="precomputed", novelty=True).fit(geometry.pairwise_distance(R, R))
+    got = sc.raw_scores(Q, ids[45:], np.zeros(15), bl)
+    np.testing.assert_allclose(got, -nov.score_samples(geometry.pairwise_distance(Q, R)), rtol=1e-7)
+    assert np.argmax(bl.loo_scores) == 5
+
+
+def test_mean_method_is_the_distance_to_the_references_frechet_mean():
+    # Checked against pyriemann's Karcher mean and affine-invariant distance (pyriemann.geometry).
+    from pyriemann.geometry.distance import distance_riemann
+    from pyriemann.geometry.mean import mean_riemann
+
+    D, rec, t, _, _ = fleet(16, n_rec=3, per_rec=30, outliers=[(1, 3, 0)])
+    bl = sc.fit_baseline(D, rec, t, k=3, metric="riemann", zone_s=10.0, trim_fraction=0.1, method="mean")
+    M = mean_riemann(bl.references)
+    np.testing.assert_allclose(bl.mean, M, atol=1e-8)
+    want = np.array([distance_riemann(x, M) for x in D])
+    np.testing.assert_allclose(sc.score(D, rec, t, bl), want, atol=1e-8)
+    assert 33 in set(np.flatnonzero(~bl.kept))  # the planted outlier is trimmed
+    z = sc.zscore(sc.score(D, rec, t, bl), bl)
+    assert z[33] > bl.c and np.median(z[bl.kept]) == pytest.approx(0.0, abs=0.5)
+
+
+@pytest.mark.parametrize("method", ["knn", "density", "mean"])
+def test_zscore_over_c_is_the_threshold_in_the_methods_units(method):
+    D, rec, t, _, _ = fleet(17, n_rec=4, per_rec=30, outliers=PLANTED[:2])
+    bl = sc.fit_baseline(D, rec, t, k=3, zone_s=10.0, trim_fraction=0.1, method=method, unit="recording", c=3.0)
+    raw = sc.score(D, rec, t, bl)
+    z = sc.zscore(raw, bl)
+    np.testing.assert_array_equal(z > 3.0, raw > bl.threshold)
+    # The references' own leave-one-out scores are centred at 0 with robust sigma 1.
+    zr = sc.zscore(bl.loo_scores, bl)
+    assert np.median(zr) == pytest.approx(0.0, abs=1e-12)
+    assert np.median(np.abs(zr)) * 1.4826 == pytest.approx(1.0, rel=1e-3)
+
+
+def test_methods_and_units_give_different_scores():
+    D, rec, t, _, _ = fleet(18, n_rec=4, per_rec=30, outliers=PLANTED[:2])
+    out = {}
+    for method in ("knn", "density", "mean"):
+        for unit in ("recording", "window"):
+            bl = sc.fit_baseline(D, rec, t, k=3, zone_s=10.0, trim_fraction=0.1, method=method, unit=unit)
+            out[method, unit] = sc.zscore(sc.score(D, rec, t, bl), bl)
+    keys = list(out)
+    for i, a in enumerate(keys):
+        for b in keys[i + 1:]:
+            if a[0] == b[0] == "mean":
+                continue  # the distance to the mean counts no neighbours
+            assert not np.allclose(out[a], out[b]), (a, b)
+    with pytest.raises(InputError, match="method"):
+        sc.fit_baseline(D, rec, t, method="potato")
+
+
+def test_approved_windows_stop_a_false_alarm():
+    # A window reviewed as normal: itself and windows like it score no more than their distance to it.
+    D, rec, t, _, _ = fleet(19, n_rec=4, per_rec=30, outliers=[(2, 10, 3)])
+    bl = sc.fit_baseline(D, rec, t, k=3, zone_s=10.0, trim_fraction=0.1)
+    i = 2 * 30 + 10
+    assert sc.zscore(sc.score(D[i:i + 1], rec[i:i + 1], t[i:i + 1], bl), bl)[0] > bl.c
+    bl.approved = D[i:i + 1]
+    assert sc.score(D[i:i + 1], rec[i:i + 1], t[i:i + 1], bl)[0] == pytest.approx(0.0, abs=1e-7)
+    others = np.delete(np.arange(len(D)), i)
+    before = dataclasses.replace(bl, approved=None)
+    np.testing.assert_array_less(sc.score(D[others], rec[others], t[others], bl) - 1e-12,
+                                 sc.score(D[others], rec[others], t[others], before) + 1e-12)
+
+
+@pytest.mark.parametrize("method,unit", [("knn", "recording"), ("mean", "window"), ("density", "recording")])
+def test_online_scorer_equals_batch_for_every_method(method, unit):
+    D, rec, t, _, _ = fleet(20, n_rec=3, per_rec=30)
+    bl = sc.fit_baseline(D[:60], rec[:60], t[:60], k=3, zone_s=10.0, trim_fraction=0.1, method=method, unit=unit)
+    online = sc.OnlineScorer(bl)
+    got = np.array([online.score(D[i], rec[i], t[i]) for i in range(len(D))])
+    np.testing.assert_allclose(got, sc.score(D, rec, t, bl), atol=1e-10)
+    if method == "density":
+        with pytest.raises(InputError, match="density"):
+            online.update(D[0], rec[0], t[0])

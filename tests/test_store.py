@@ -42,7 +42,11 @@ def test_second_writer_is_refused_with_a_clear_message(tmp_path):
     p = mp.get_context("spawn").Process(target=_hold_lock, args=(str(tmp_path), 3.0))
     p.start()
     try:
-        time.sleep(1.5)
+        # The holder writes its pid once it holds the lock; a loaded machine may take a while to start it.
+        deadline = time.monotonic() + 60
+        while time.monotonic() < deadline and "pid" not in ((tmp_path / ".lock").read_text()
+                                                             if (tmp_path / ".lock").exists() else ""):
+            time.sleep(0.05)
         with pytest.raises(StoreLockedError, match="being written by pid"):
             with Store(tmp_path).lock(wait_s=0.2):
                 pass
