@@ -111,7 +111,7 @@ class Scoring:
 @dataclass(frozen=True)
 class BaselineSpec:
     # history: from the second night on, the references are earlier committed nights' unflagged windows
-    # (tonight's batch joins while the history holds fewer than k + 1 recordings); batch: tonight's batch,
+    # (tonight's batch joins while the history holds fewer than k recordings); batch: tonight's batch,
     # robustly trimmed; recordings: the recordings listed in `recordings`.
     source: str = "history"
     recordings: tuple[str, ...] = ()

@@ -357,7 +357,7 @@ def score_fleet(recs: list[RecordingFeatures], *, windowing, descriptor, scoring
     """Score every window of the batch against the fleet's baseline.
 
     The references (``baseline_cfg.source``): ``history`` -- earlier nights' admitted windows (``history``, newest
-    first, in ``parent_space``), joined by tonight's batch while they hold fewer than k + 1 recordings; with no
+    first, in ``parent_space``), joined by tonight's batch while they hold fewer than k recordings; with no
     usable history (a first night, or a profile change that makes ``space_key`` differ from the parent's) the
     night is scored as ``batch``: tonight's windows, robustly trimmed. ``recordings``: the listed recordings'
     windows, robustly trimmed. Tonight's own windows never serve as references under ``history``, so a fault
@@ -389,12 +389,16 @@ def score_fleet(recs: list[RecordingFeatures], *, windowing, descriptor, scoring
 
     refs: References | None = assemble(list(history), reviews, max_references=baseline_cfg.max_references,
                                        tolerance_s=tol) if use_history else None
-    tonight = refs is None or refs.n_recordings < k + 1
+    tonight = refs is None or refs.n_recordings < k
     if refs is not None and len(refs) < 2:
         refs = None
     per_block: dict[str, dict[str, baseline.Baseline]] = {}
+    tonight_ok = verdict == "normal"
+    if refs is not None:  # a window approved on an earlier night and scored again tonight counts once
+        tonight_ok &= np.array([(c_, t_) not in refs.approved_ids for c_, t_ in
+                                zip(w.content.tolist(), np.round(w.t_mid, 6).tolist())], bool)
     for b in space.blocks:
-        approved = w.D[b][verdict == "normal"]
+        approved = w.D[b][tonight_ok]
         if refs is not None and len(refs.approved[b]):
             approved = np.concatenate([refs.approved[b], approved])
         per_block[b] = {}

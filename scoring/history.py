@@ -121,6 +121,7 @@ class References:
     run_id: np.ndarray
     approved: dict[str, np.ndarray]  # block -> (a, d, d): windows reviewed as normal
     n_candidates: int = 0  # admitted windows before the cap
+    approved_ids: set = field(default_factory=set)  # (content, rounded window centre) of the approved windows
 
     def __len__(self) -> int:
         return len(self.content)
@@ -147,6 +148,7 @@ def assemble(banks: list[Bank], reviews: Reviews | None, *, max_references: int,
     blocks = list(banks[0].descriptors)
     seen: set[tuple[str, int]] = set()
     parts, approved = [], {b: [] for b in blocks}
+    approved_ids: set = set()
     for bank in banks:
         if list(bank.descriptors) != blocks:
             raise InputError(_SRC, "banks", f"descriptor blocks {blocks}", list(bank.descriptors))
@@ -157,6 +159,8 @@ def assemble(banks: list[Bank], reviews: Reviews | None, *, max_references: int,
         take = fresh & ((bank.admitted & (v != "fault")) | (v == "normal"))
         for b in blocks:
             approved[b].append(bank.descriptors[b][fresh & (v == "normal")])
+        ok = fresh & (v == "normal")
+        approved_ids.update(zip(bank.content[ok].tolist(), np.round(bank.t_mid[ok], 6).tolist()))
         order = np.lexsort((bank.t_mid[take], bank.content[take]))
         parts.append((bank, np.flatnonzero(take)[order]))
     n = sum(len(ix) for _, ix in parts)
@@ -180,4 +184,4 @@ def assemble(banks: list[Bank], reviews: Reviews | None, *, max_references: int,
         descriptors={b: np.concatenate(desc[b]) if desc[b] else np.zeros((0,) + d0[b].shape[1:]) for b in blocks},
         content=np.concatenate(content).astype(str), t_mid=np.concatenate(t_mid).astype(np.float64),
         run_id=np.concatenate(run_id).astype(str),
-        approved={b: np.concatenate(approved[b]) for b in blocks}, n_candidates=n)
+        approved={b: np.concatenate(approved[b]) for b in blocks}, n_candidates=n, approved_ids=approved_ids)

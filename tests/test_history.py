@@ -151,7 +151,7 @@ def test_a_thin_history_is_joined_by_tonights_batch():
     night2, _ = _recs(6, n_rec=4, night=2)
     res = _score(night2, parent_space=first.baseline.space, history=[dataclasses.replace(first.bank, run_id="r1")])
     info = res.baseline.info
-    assert info.source == "history" and info.tonight  # 2 recordings < k + 1 = 4
+    assert info.source == "history" and info.tonight  # 2 recordings < k = 3
     assert info.n_reference_recordings == 6
 
 
