@@ -947,20 +947,31 @@ max_gap_s = 0.25      # a window straddling a gap in any stream longer than this
 kind = "ledoit_wolf"  # ledoit_wolf | oas | rbf | lagged
 include_mean = true   # Gaussian embedding of window mean + covariance into SPD(c+1) (Calvo & Oller 1990)
 lags = 3              # lagged only
-ridge = 0.3            # noise floor added to every descriptor, in standardised units
+ridge = "auto"        # noise floor added to every window covariance, in standardised units; "auto": the smallest
+                      # eigenvalue of the baseline's channel correlation matrix, clipped to [0.05, 1]
+per_stream = true     # one descriptor per stream (imu, camera), combined by the largest score; false: one for all
 
 [scoring]
 metric = "riemann"    # primary metric: riemann | logeuclid | euclid
-method = "knn"        # knn | mean
+method = "knn"        # knn: k-th nearest neighbour distance | density: local outlier factor |
+                      # mean: distance to the references' Frechet mean
 k = 3                 # neighbours
-knn_stat = "kth"      # kth | mean
+knn_unit = "recording"  # recording: the nearest window of each of the k nearest recordings (a behaviour is normal
+                        # only where k recordings show it) | window: the k nearest windows
+knn_stat = "kth"      # kth | mean (of the k distances)
 exclusion_s = 30.0    # same-recording neighbours within this many seconds never count
-trim_fraction = 0.1   # robust baseline: drop this share of highest-scoring windows and refit
-threshold_c = 3.0     # flag when score > median + c * MAD of the baseline's leave-one-out scores
-top_channels = 3
+trim_fraction = 0.1   # a first night's batch baseline: drop this share of highest-scoring windows and refit
+threshold_c = 3.0     # flag when the score, a robust z, exceeds c (median + c x 1.4826 MAD of the references'
+                      # leave-one-out scores: c = 3 is about three standard deviations)
+top_channels = 3      # channels named per flagged window
 
 [baseline]
-recordings = []       # recording names; empty = built robustly from the batch itself
+source = "history"    # history: earlier nights' unflagged windows (tonight's batch on a first night) |
+                      # batch: tonight's batch, robustly trimmed | recordings: the recordings listed below
+recordings = []       # recording names, for source = "recordings"
+history_nights = 7    # committed nights the references come from, newest first
+max_references = 4000 # cap on reference windows, evenly subsampled
+history_max_score = 2.0  # a window joins the history only with a score at most this (and none flagged near it)
 
 [streams.imu]
 kind = "table"
