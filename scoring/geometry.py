@@ -448,36 +448,40 @@ def frechet_mean(X, metric: str = "riemann", weights=None, tol: float = 1e-10, m
     if metric == "riemann":
         return _karcher(X, w, tol, max_iter)
     if metric == "logdet":
-        M = np.tensordot(w, X, axes=1)
         eye = np.eye(X.shape[-1])
-        for _ in range(max_iter):
-            J = np.tensordot(w, np.linalg.solve(0.5 * (M + X), eye), axes=1)
-            M_new = np.linalg.solve(J, eye)
-            M_new = 0.5 * (M_new + M_new.T)
-            crit = np.linalg.norm(M_new - M) / np.linalg.norm(M)
-            M = M_new
-            if crit <= tol:
-                return M
-        _warn_conv("logdet", max_iter, crit, tol)
-        return M
-    # wasserstein
-    M = np.tensordot(w, X, axes=1)
-    for _ in range(max_iter):
+
+        def stein_step(M):  # (sum_i w_i ((M + X_i) / 2)^-1)^-1
+            return np.linalg.solve(np.tensordot(w, np.linalg.solve(0.5 * (M + X), eye), axes=1), eye)
+
+        return _fixed_point_mean(X, w, stein_step, "logdet", tol, max_iter)
+
+    def bures_step(M):  # M^-1/2 (sum_i w_i (M^1/2 X_i M^1/2)^1/2)^2 M^-1/2
         M12, Mm12 = _sqrt_invsqrt(M)
         S = np.tensordot(w, sqrtm(M12 @ X @ M12), axes=1)
-        M_new = Mm12 @ S @ S @ Mm12
+        return Mm12 @ S @ S @ Mm12
+
+    return _fixed_point_mean(X, w, bures_step, "wasserstein", tol, max_iter)
+
+
+def _fixed_point_mean(X: np.ndarray, w: np.ndarray, step, metric: str, tol: float, max_iter: int) -> np.ndarray:
+    """Iterate ``M <- step(M)`` (symmetrised) from the weighted arithmetic mean until the relative change
+    ``||M_new - M||_F / ||M||_F`` is at most ``tol``; warns when ``max_iter`` steps do not get there."""
+    M = np.tensordot(w, X, axes=1)
+    crit = np.inf
+    for _ in range(max_iter):
+        M_new = step(M)
         M_new = 0.5 * (M_new + M_new.T)
         crit = np.linalg.norm(M_new - M) / np.linalg.norm(M)
         M = M_new
         if crit <= tol:
             return M
-    _warn_conv("wasserstein", max_iter, crit, tol)
+    _warn_conv(metric, max_iter, crit, tol, stacklevel=4)
     return M
 
 
-def _warn_conv(metric, max_iter, crit, tol):
+def _warn_conv(metric, max_iter, crit, tol, stacklevel=3):
     warnings.warn(f"frechet_mean({metric}) did not converge in {max_iter} iterations "
-                  f"(criterion {crit:.3g} > tol {tol:.3g})", ConvergenceWarning, stacklevel=3)
+                  f"(criterion {crit:.3g} > tol {tol:.3g})", ConvergenceWarning, stacklevel=stacklevel)
 
 
 def _karcher(X: np.ndarray, w: np.ndarray, tol: float, max_iter: int, warn: bool = True) -> np.ndarray:

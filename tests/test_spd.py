@@ -170,6 +170,31 @@ def test_means_match_pyriemann(metric, ref, kw):
                                f(X, sample_weight=w / w.sum(), **kw), atol=1e-9)
 
 
+@pytest.mark.parametrize("metric", ["logdet", "wasserstein"])
+def test_fixed_point_means_one_step_by_hand(metric):
+    # The Stein and Bures-Wasserstein means share one fixed-point loop: stopped after one step (with the warning
+    # that it did not converge) it must give one step of each published iteration from the weighted arithmetic
+    # mean, computed here with scipy.linalg (Chebbi & Moakher 2012; Alvarez-Esteban et al. 2016).
+    rng = np.random.default_rng(21)
+    X = random_spd(rng, 6, 4)
+    w = rng.uniform(0.5, 2.0, 6)
+    w = w / w.sum()
+    A = np.tensordot(w, X, axes=1)
+    if metric == "logdet":
+        want = sla.inv(sum(wi * sla.inv((A + Xi) / 2) for wi, Xi in zip(w, X)))
+    else:
+        A12 = sla.sqrtm(A).real
+        Am12 = sla.inv(A12)
+        S = sum(wi * sla.sqrtm(A12 @ Xi @ A12).real for wi, Xi in zip(w, X))
+        want = Am12 @ S @ S @ Am12
+    with pytest.warns(geometry.ConvergenceWarning, match=f"frechet_mean\\({metric}\\) did not converge in 1 "):
+        got = geometry.frechet_mean(X, metric, weights=w, max_iter=1)
+    np.testing.assert_allclose(got, want, rtol=1e-10, atol=1e-12)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", geometry.ConvergenceWarning)  # the default budget converges quietly
+        geometry.frechet_mean(X, metric, weights=w)
+
+
 def test_distance_broadcasts_leading_axes():
     rng = np.random.default_rng(9)
     A = random_spd(rng, 6, 3).reshape(2, 3, 3, 3)
