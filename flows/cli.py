@@ -10,10 +10,9 @@ import tempfile
 from pathlib import Path
 
 from fleetsift.flows import env
+from fleetsift.safety import SAFETY_NOTE
 
 EXIT_OK, EXIT_ERROR, EXIT_USAGE, EXIT_QUARANTINED, EXIT_LOCKED = 0, 1, 2, 3, 4
-SAFETY_NOTE = ("Scores are a screening aid, not a certification of airworthiness or roadworthiness: follow your "
-               "operator's procedures and local rules before grounding or releasing a vehicle.")
 
 
 def _num(x):

@@ -12,8 +12,8 @@ from fleetsift.scoring.evaluation import (hanley_mcneil_se, label_windows, outli
 from fleetsift.errors import InputError
 from fleetsift.profile import Profile
 from fleetsift.store import Store
+from fleetsift.vocabulary import METRICS
 
-METRICS = ("riemann", "logeuclid", "euclid")
 BASELINES = ("isolation_forest", "local_outlier_factor")
 BASELINE_FEATURES = ("tangent vectors at the riemann baseline's Frechet mean M: upper triangle of "
                      "logm(M^-1/2 X M^-1/2), off-diagonals x sqrt(2) (Barachant et al. 2012)")

@@ -20,12 +20,8 @@ import pandas as pd
 
 from fleetsift import __version__
 from fleetsift.store import Store
+from fleetsift.safety import SAFETY_NOTE
 
-SAFETY_NOTE = ("These scores are a screening aid, not a certification of airworthiness or roadworthiness. They "
-               "point an engineer at recordings and seconds worth a look; whether to ground, repair or release a "
-               "vehicle is decided by the operator's own procedures and the local rules, which this report does "
-               "not replace.")
-METRICS = ("riemann", "logeuclid", "euclid")
 TOP_N = 10
 THUMB_W = 176  # px; three JPEG thumbnails per window stay ~15 KB
 PLOT_DPI = 90

@@ -14,14 +14,15 @@ import numpy as np
 from fleetsift.scoring import geometry
 from fleetsift.scoring.index import KNNIndex, knn
 from fleetsift.errors import InputError
+from fleetsift.profile import Scoring
+from fleetsift.vocabulary import KNN_STATS
 
-__all__ = ["MAD_SCALE", "STATS", "exclusion_mask", "knn_scores", "mean_scores", "robust_z", "median_mad",
+__all__ = ["MAD_SCALE", "exclusion_mask", "knn_scores", "mean_scores", "robust_z", "median_mad",
            "threshold", "riemannian_potato", "Potato", "Baseline", "fit_baseline", "score", "attribute",
            "top_channels", "OnlineScorer"]
 
 # MAD -> standard deviation for Gaussian data: 1 / Phi^-1(3/4) (common practice).
 MAD_SCALE = 1.4826
-STATS = ("kth", "mean")
 _SRC = "fleetsift.scoring.baseline"
 
 
@@ -63,7 +64,7 @@ def robust_z(d, ref_d) -> np.ndarray:
     return (d - med) / scale
 
 
-def threshold(ref_scores, c: float = 3.0) -> float:
+def threshold(ref_scores, c: float = Scoring.threshold_c) -> float:
     """Flagging threshold ``median + c * 1.4826 * MAD`` of the finite reference scores.
 
     1.4826 * MAD is the Gaussian-consistent robust standard deviation (common practice), so ``c = 3`` is the
@@ -97,8 +98,8 @@ def exclusion_mask(q_rec, q_t, r_rec, r_t, zone_s: float) -> np.ndarray:
 
 
 def _check_stat(stat: str) -> str:
-    if stat not in STATS:
-        raise InputError(_SRC, "stat", f"one of {STATS}", repr(stat))
+    if stat not in KNN_STATS:
+        raise InputError(_SRC, "stat", f"one of {KNN_STATS}", repr(stat))
     return stat
 
 
@@ -109,13 +110,14 @@ def _stat(dist: np.ndarray, k: int, stat: str) -> np.ndarray:
     return np.where(full, s, np.nan)
 
 
-def knn_scores(queries, references, k: int, metric: str = "riemann", stat: str = "kth", exclude=None,
-               index: KNNIndex | None = None) -> np.ndarray:
+def knn_scores(queries, references, k: int = Scoring.k, metric: str = Scoring.metric, stat: str = Scoring.knn_stat,
+               exclude=None, index: KNNIndex | None = None) -> np.ndarray:
     """kNN score of each query -> ``(n,)``: the k-th (``stat="kth"``) or mean (``"mean"``) of its k exact
     nearest-reference distances (:func:`fleetsift.scoring.index.knn`).
 
     ``exclude`` bool ``(n, m)`` as in :func:`exclusion_mask`. A query with fewer than k allowed references has
-    an undefined score: NaN. ``index`` may be a prebuilt :class:`~fleetsift.scoring.index.KNNIndex` over ``references``.
+    an undefined score: NaN. ``index`` may be a prebuilt :class:`~fleetsift.scoring.index.KNNIndex` over
+    ``references``.
     """
     _check_stat(stat)
     if index is None:
@@ -125,7 +127,7 @@ def knn_scores(queries, references, k: int, metric: str = "riemann", stat: str =
     return _stat(dist, int(k), stat)
 
 
-def mean_scores(queries, mean, metric: str = "riemann") -> np.ndarray:
+def mean_scores(queries, mean, metric: str = Scoring.metric) -> np.ndarray:
     """Distance of each query ``(n, d, d)`` to a Fréchet mean ``(d, d)`` -> ``(n,)``."""
     return np.asarray(geometry.distance(queries, mean, metric)).reshape(-1)
 
@@ -141,14 +143,15 @@ class Potato:
     mad: float
     n_iter: int
 
-    def z(self, X, metric: str = "riemann") -> np.ndarray:
+    def z(self, X, metric: str = Scoring.metric) -> np.ndarray:
         """Robust z-scores of new matrices' distances to the potato's mean."""
         d = mean_scores(X, self.mean, metric)
         scale = MAD_SCALE * self.mad
         return (d - self.median) / scale if scale > 0 else np.where(d == self.median, 0.0, np.inf)
 
 
-def riemannian_potato(references, metric: str = "riemann", z_threshold: float = 3.0, max_iter: int = 10) -> Potato:
+def riemannian_potato(references, metric: str = Scoring.metric, z_threshold: float = 3.0,
+                      max_iter: int = 10) -> Potato:
     """Riemannian potato (Barachant et al. 2013): iteratively reject outliers before re-estimating the mean.
 
     Each round computes the Fréchet mean of the kept matrices, the distances of *all* matrices to it, and keeps
@@ -201,7 +204,7 @@ class Baseline:
     kept: np.ndarray
     ref_index: np.ndarray = field(default_factory=lambda: np.zeros(0, np.int64))
     initial_scores: np.ndarray = field(default_factory=lambda: np.zeros(0))
-    c: float = 3.0
+    c: float = Scoring.threshold_c
     median: float = float("nan")
     mad: float = float("nan")
 
@@ -224,8 +227,9 @@ def _check_windows(descriptors, rec_ids, times):
     return D, rec, t
 
 
-def fit_baseline(descriptors, rec_ids, times, k: int = 5, metric: str = "riemann", stat: str = "kth",
-                 zone_s: float = 30.0, trim_fraction: float = 0.1, c: float = 3.0,
+def fit_baseline(descriptors, rec_ids, times, k: int = Scoring.k, metric: str = Scoring.metric,
+                 stat: str = Scoring.knn_stat, zone_s: float = Scoring.exclusion_s,
+                 trim_fraction: float = Scoring.trim_fraction, c: float = Scoring.threshold_c,
                  max_refs: int | None = None) -> Baseline:
     """Fit a robust baseline from windows that are mostly normal.
 
@@ -309,7 +313,7 @@ def attribute(descriptors, ref_mean, groups, n_groups: int) -> np.ndarray:
     return np.where(still | (tot <= 0), 1.0 / n_groups, S / np.where(tot > 0, tot, 1.0))
 
 
-def top_channels(shares, names, top: int = 3) -> list[list[tuple[str, float]]]:
+def top_channels(shares, names, top: int = Scoring.top_channels) -> list[list[tuple[str, float]]]:
     """The ``top`` largest shares of each window as ``[(name, share), ...]``, largest first."""
     shares = np.asarray(shares, dtype=np.float64)
     names = list(names)

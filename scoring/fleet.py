@@ -15,8 +15,7 @@ from fleetsift.featurizers import descriptors as desc
 from fleetsift.featurizers.pca import fit_pca
 from fleetsift.featurizers.tables import cut_windows, place_on_clock, window_starts
 from fleetsift.scoring import baseline
-
-METRICS = ("riemann", "logeuclid", "euclid")
+from fleetsift.vocabulary import METRICS
 
 
 @dataclass

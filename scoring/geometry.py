@@ -28,15 +28,15 @@ import warnings
 import numpy as np
 
 from fleetsift.errors import InputError
+from fleetsift.vocabulary import SPD_METRICS
 
 __all__ = [
-    "METRICS", "EIG_FLOOR", "SPDWarning", "ConvergenceWarning",
+    "SPD_METRICS", "EIG_FLOOR", "SPDWarning", "ConvergenceWarning",
     "sqrtm", "invsqrtm", "logm", "expm", "powm",
     "distance", "pairwise_distance", "frechet_mean", "geodesic", "log_map", "exp_map",
     "vec", "unvec",
 ]
 
-METRICS = ("riemann", "logeuclid", "euclid", "logdet", "wasserstein")
 EIG_FLOOR = 1e-12
 _SRC = "fleetsift.scoring.geometry"
 # Pair batches for the exact kernels: ~8k 14x14 matrices is ~12 MB per temporary, well inside cache-friendly sizes.
@@ -66,8 +66,8 @@ def _as_spd(X, name: str = "X", min_ndim: int = 2) -> np.ndarray:
 
 
 def _check_metric(metric: str) -> str:
-    if metric not in METRICS:
-        raise InputError(_SRC, "metric", f"one of {METRICS}", repr(metric))
+    if metric not in SPD_METRICS:
+        raise InputError(_SRC, "metric", f"one of {SPD_METRICS}", repr(metric))
     return metric
 
 

@@ -20,6 +20,7 @@ import pandas as pd
 from fleetsift.errors import InputError
 from fleetsift.profile import Profile, VideoStream
 from fleetsift.store import Store, code_version, stage_key
+from fleetsift.vocabulary import METRICS
 from fleetsift.featurizers import recording, video, weights
 from fleetsift.scoring import fleet
 # featurizers/embed.py (torch, torchvision) is imported only where frames are embedded: a night that reuses every
@@ -224,7 +225,7 @@ def run_score(prepared: list[dict], profile: Profile, store_root: str, run_id: s
     rows = []
     for w in res.windows:
         n = len(w.t_start)
-        for m in fleet.METRICS:
+        for m in METRICS:
             rows.append(pd.DataFrame({
                 "recording_id": w.recording_id, "window_index": np.arange(n, dtype=np.int64),
                 "t_start_s": w.t_start, "t_end_s": w.t_end, "metric": m, "score": w.scores[m],

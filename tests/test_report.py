@@ -15,7 +15,8 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from fleetsift.flows.report import SAFETY_NOTE, flagged_spans, pick_top, write_report
+from fleetsift.flows.report import flagged_spans, pick_top, write_report
+from fleetsift.safety import SAFETY_NOTE
 
 ROOT = Path(__file__).resolve().parent.parent
 CHROMIUM = "/usr/bin/chromium"
@@ -184,6 +185,23 @@ def test_missing_video_keeps_the_traces(tmp_path):
     (card,) = parse(out).cards
     assert card["recording"] == "rover-a" and "video unreadable" in card["text"] and "camera.mp4" in card["text"]
     assert [i["src"][:14] for i in card["imgs"]] == ["data:image/png"]
+
+
+def test_one_safety_text_in_the_cli_json_help_report_and_readme(store_run):
+    # The safety note is defined once (fleetsift/safety.py): the run JSON, the CLI's help, the HTML report and
+    # the README say the same words.
+    from fleetsift.flows.cli import build_parser, summarise
+
+    st, run_id, w, out = store_run
+    summary = summarise({"run_id": run_id, "store": str(st.root), "store_version": 0, "recordings": [],
+                         "stages": {}, "elapsed_s": 0.0}, "riemann")
+    assert summary["note"] == SAFETY_NOTE
+    flat = lambda text: " ".join(text.split())  # noqa: E731 -- line wrapping aside
+    assert flat(SAFETY_NOTE) in flat(build_parser().format_help())
+    assert flat(SAFETY_NOTE) in flat(" ".join(parse(out).text))
+    readme = (Path(__file__).resolve().parent.parent / "README.md").read_text()
+    quoted = " ".join(line[2:] for line in readme.splitlines() if line.startswith("> "))
+    assert flat(SAFETY_NOTE) in flat(quoted.replace("**Safety note.**", ""))
 
 
 def test_report_matches_store(store_run):
