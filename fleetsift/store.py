@@ -12,6 +12,7 @@ Layout of a store folder:
 
 from __future__ import annotations
 
+import ast
 import contextlib
 import errno
 import fcntl
@@ -30,7 +31,7 @@ import numpy as np
 import pandas as pd
 import pyarrow as pa
 
-from fleetsift import __version__
+from fleetsift import __version__, codebase
 from fleetsift.errors import StoreLockedError
 
 TABLE_SCHEMAS: dict[str, pa.Schema] = {
@@ -76,24 +77,40 @@ TABLES = tuple(TABLE_SCHEMAS)
 
 
 def code_version(*objects: Any) -> str:
-    """A stage's code version: the hash of the source of the modules it runs (so an edit invalidates its cache).
+    """A stage's code version: the hash of the source of what it runs (so an edit invalidates its cache).
 
-    A module may be given by its dotted name: its source file is read without importing it (so building a key
-    for the embedding stage does not load torch).
+    Each object is a module of the package by dotted name (its source file is read without importing it, so
+    building a key for the embedding stage does not load torch), ``"module:function"`` for one function of such
+    a module, or any other object, whose source ``inspect`` finds.
     """
     h = hashlib.sha256(__version__.encode())
     for obj in objects:
-        try:
-            if isinstance(obj, str):
-                spec = importlib.util.find_spec(obj)
-                if spec is None or not spec.origin:
-                    raise OSError(obj)
-                h.update(Path(spec.origin).read_text(encoding="utf-8").encode())
-            else:
+        if isinstance(obj, str):
+            h.update(obj.encode())
+            h.update(_source_of(obj).encode())
+        else:
+            try:
                 h.update(inspect.getsource(obj).encode())
-        except (OSError, TypeError):
-            h.update(repr(obj).encode())
+            except (OSError, TypeError):
+                h.update(repr(obj).encode())
     return h.hexdigest()[:16]
+
+
+def _source_of(name: str) -> str:
+    module, _, function = name.partition(":")
+    if module in codebase.module_files():
+        src = codebase.read_source(module)
+    else:
+        spec = importlib.util.find_spec(module)
+        if spec is None or not spec.origin or not Path(spec.origin).is_file():
+            raise ValueError(f"code_version: no source file for module {module!r}")
+        src = Path(spec.origin).read_text(encoding="utf-8")
+    if not function:
+        return src
+    for node in ast.parse(src).body:
+        if isinstance(node, (ast.FunctionDef, ast.AsyncFunctionDef, ast.ClassDef)) and node.name == function:
+            return ast.get_source_segment(src, node) or ""
+    raise ValueError(f"code_version: {module} has no top-level function {function!r}")
 
 
 def stage_key(stage: str, content_hash: str, section: Any, version: str) -> str:

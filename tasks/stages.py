@@ -8,6 +8,7 @@ This module never imports Prefect: a night with nothing to compute runs these fu
 
 from __future__ import annotations
 
+import functools
 import json
 import sys
 import time
@@ -17,6 +18,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
+from fleetsift import codebase
 from fleetsift.errors import InputError
 from fleetsift.profile import Profile, VideoStream
 from fleetsift.store import Store, code_version, stage_key
@@ -33,17 +35,36 @@ class NotCached(Exception):
     """A stage called with ``cached_only=True`` whose output is not in the cache (raised before any work)."""
 
 
-def _tables_version() -> str:
-    return code_version("fleetsift.featurizers.tables", "fleetsift.featurizers.recording")
+# What each stage runs, by its entry modules: its code version hashes these and every featurizer or scoring module
+# they import (fleetsift.codebase.closure, lazy imports included), the vocabularies, and the stage's own functions
+# below. A module a stage does not reach (the demo's video writer, the PCA for the embeddings) stays out of its
+# version, and so does the rest of the core: the profile values a stage reads are in its key already (its profile
+# section), errors and the store only shape messages and files; so a new profile key never re-embeds a video.
+STAGE_CODE: dict[str, tuple[str, ...]] = {
+    "tables": ("fleetsift.featurizers.recording",),
+    "embed": ("fleetsift.featurizers.video", "fleetsift.featurizers.embed", "fleetsift.featurizers.weights",
+              "fleetsift.featurizers.logs"),  # logs: frames of image topics in ROS 2 bags
+    "score": tuple(codebase.subpackage("fleetsift.scoring")),  # evaluation too: run_descriptors' output
+}
+STAGE_FUNCTIONS: dict[str, tuple[str, ...]] = {
+    "tables": ("run_tables",), "embed": ("run_embed", "_frames"),
+    "score": ("run_score", "load_features", "run_descriptors"),
+}
 
 
-def _embed_version() -> str:
-    return code_version("fleetsift.featurizers.video", "fleetsift.featurizers.embed", "fleetsift.featurizers.weights")
+_HASHED = ("fleetsift.featurizers", "fleetsift.scoring", "fleetsift.vocabulary")
 
 
-def _score_version() -> str:
-    return code_version(*(f"fleetsift.scoring.{m}" for m in ("fleet", "baseline", "geometry", "index")),
-                        "fleetsift.featurizers.descriptors", "fleetsift.featurizers.pca")
+def stage_modules(stage: str) -> list[str]:
+    """The modules in a stage's code version (sorted): what it runs of the featurizers, scoring and vocabulary."""
+    return [m for m in codebase.closure(STAGE_CODE[stage]) if m.startswith(_HASHED)]
+
+
+@functools.cache
+def stage_version(stage: str) -> str:
+    """The code version in a stage's cache keys: the source of every module and function it runs (read, not
+    imported: the embed stage's key never loads torch). Cached for the process, like the code it describes."""
+    return code_version(*stage_modules(stage), *(f"{__name__}:{f}" for f in STAGE_FUNCTIONS[stage]))
 
 
 def recording_hash(store: Store, rec_dir: Path, files: list[Path]) -> str:
@@ -76,7 +97,7 @@ def run_tables(rec_dir: str, profile: Profile, store_root: str, cached_only: boo
         content = recording_hash(store, rec_dir, files)
         section = {"streams": {s.name: profile.section(f"streams.{s.name}") for s in streams},
                    "rate_hz": profile.windowing.rate_hz, "max_gap_s": profile.windowing.max_gap_s}
-        key = stage_key("tables", content, section, _tables_version())
+        key = stage_key("tables", content, section, stage_version("tables"))
         out = store.cache_path("tables", key)
         if out.exists() and not force:
             meta = json.loads(str(Store.load_arrays(out)["meta"]))
@@ -140,7 +161,7 @@ def run_embed(rec_dir: str, profile: Profile, store_root: str, progress: bool = 
             section = {"file": stream.file, "topic": stream.topic, "stamp": stream.stamp,
                        "sample_hz": stream.sample_hz, "backbone": stream.backbone, "weights": weights_fp,
                        "image_size": stream.image_size}
-            key = stage_key("embed", content, section, _embed_version())
+            key = stage_key("embed", content, section, stage_version("embed"))
             out = store.cache_path("embed", key)
             if out.exists() and stream.name not in force_streams:
                 reused += 1
@@ -195,7 +216,7 @@ def run_score(prepared: list[dict], profile: Profile, store_root: str, run_id: s
     section = {k: profile.section(k) for k in ("windowing", "descriptor", "scoring", "baseline")}
     section["pca"] = {s.name: s.pca_dim for s in profile.video_streams()}
     section["offsets"] = {s.name: s.clock_offset_s for s in profile.video_streams()}
-    key = stage_key("score", json.dumps(keys), section, _score_version())
+    key = stage_key("score", json.dumps(keys), section, stage_version("score"))
     out = store.cache_path("score", key).with_suffix(".parquet")
     if out.exists() and out.with_suffix(".json").exists() and not force:
         meta = json.loads(out.with_suffix(".json").read_text())
