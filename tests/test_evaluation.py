@@ -243,12 +243,9 @@ def fleetsift(*args, timeout=1500):
 
 
 @pytest.fixture(scope="module")
-def evaluated(tmp_path_factory):
-    from fleetsift.demo import fleet as demo_fleet
-
+def evaluated(demo_fleet, tmp_path_factory):
     base = tmp_path_factory.mktemp("evaluate")
-    inbox, store = base / "inbox", base / "store"
-    demo_fleet.make_fleet(inbox, n_recordings=3, duration_s=20.0, seed=3)
+    inbox, store = demo_fleet.copy(base / "inbox", demo_fleet.names[-3:]), base / "store"
     p = fleetsift("evaluate", "--inbox", str(inbox), "--labels", str(inbox / "labels.csv"), "--store", str(store),
                   "--plot", str(base / "roc.png"), "--json")
     return inbox, store, base, json.loads(p.stdout)

@@ -318,12 +318,10 @@ def test_report_errors(tmp_path):
 
 @pytest.mark.slow
 @pytest.mark.timeout(1500)
-def test_report_of_a_real_run(tmp_path):
-    from fleetsift.demo import fleet as demo_fleet
+def test_report_of_a_real_run(demo_fleet, tmp_path):
     from fleetsift.store import Store
 
-    inbox, store = tmp_path / "inbox", tmp_path / "store"
-    demo_fleet.make_fleet(inbox, n_recordings=3, duration_s=20.0, seed=5)
+    inbox, store = demo_fleet.copy(tmp_path / "inbox", demo_fleet.names[-3:]), tmp_path / "store"
     # A lower flagging threshold so this short fleet surely has windows to show (the report reads this profile).
     prof = inbox / "profile.toml"
     text = prof.read_text()
