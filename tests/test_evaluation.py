@@ -10,6 +10,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 import pytest
+from inboxes import table_inbox  # tests/ is on sys.path under pytest
 
 from fleetsift.scoring import baseline as scoring
 from fleetsift.scoring import fleet
@@ -227,6 +228,32 @@ def test_score_point_detects_a_planted_burst_and_reports_errors(tmp_path):
     assert 0 <= row["auc_se"] < 0.1
     bad = score_point(prepared, prof, dict(pt, k=10_000), str(labels))
     assert bad["auc"] is None and bad["error"]
+
+
+# ------------------------------------------------------------------------------------ preparing an inbox
+
+def test_evaluate_quarantines_a_too_short_recording_as_the_night_does(tmp_path):
+    # One preparation for both: `fleetsift evaluate` must score exactly the recordings a night scores, or its
+    # recomputed baseline would differ from the run's. A 3 s recording is shorter than one 4 s window.
+    from fleetsift.flows import evaluate, night
+    from fleetsift.tasks import stages
+
+    inbox = table_inbox(tmp_path / "inbox", {"long-a": 30.0, "long-b": 30.0, "short": 3.0})
+    steps = night.Steps(tables=stages.run_tables, embed=stages.run_embed, score=stages.run_score,
+                        write=stages.run_write)
+    saved = dict(os.environ)
+    try:
+        ran = night.run_night(steps, str(inbox), str(tmp_path / "store-run"), progress=False)
+        _, prepared, bad = evaluate.prepare(str(inbox), str(tmp_path / "store-eval"))
+    finally:  # evaluate.prepare points Prefect's settings at its store
+        os.environ.clear()
+        os.environ.update(saved)
+    run_bad = [{"recording_id": r["recording_id"], "reason": r["reason"]} for r in ran["recordings"]
+               if r["status"] == "quarantined"]
+    assert [b["recording_id"] for b in bad] == ["short"]
+    assert bad == run_bad
+    assert "windowing.window_s: expected a recording at least one window (4 s) long" in bad[0]["reason"]
+    assert sorted(p["tables"]["recording_id"] for p in prepared) == ["long-a", "long-b"]
 
 
 # -------------------------------------------------------------------------------------- slow: the CLI
