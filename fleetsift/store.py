@@ -324,11 +324,38 @@ class Store:
                     rows.append({"version": v, **r})
         return pd.DataFrame(rows, columns=cols)
 
+    def sweep_temporary(self, older_than_hours: float, now: float | None = None) -> dict[str, int]:
+        """Remove the temporary files of killed writers older than ``older_than_hours``; returns counts.
+
+        Atomic writes leave ``.NAME.XXXX.tmp`` (stage cache, baselines, catalog) or ``NAME.tmp`` (score staging
+        Parquet, reports) only when the writer dies between writing and renaming. Files younger than the age limit
+        are kept: they may belong to a writer that is still running (`maintain` holds the store's lock, but a
+        report written outside the store's runs does not take it).
+        """
+        limit = (time.time() if now is None else now) - float(older_than_hours) * 3600.0
+        found = [p for p in self.root.glob("*.tmp")]
+        for sub in ("cache", "baselines", "reports"):
+            found += (self.root / sub).rglob("*.tmp")
+        removed = kept = 0
+        for p in found:
+            try:
+                if not p.is_file() or p.is_symlink():
+                    continue
+                if p.stat().st_mtime < limit:
+                    p.unlink()
+                    removed += 1
+                else:
+                    kept += 1
+            except FileNotFoundError:  # renamed or removed meanwhile by its writer
+                continue
+        return {"removed": removed, "kept_recent": kept}
+
     def maintain(self, retention_hours: float = 168.0) -> dict[str, dict]:
         """Compact small files and vacuum files older than the retention; time travel inside it keeps working.
 
         Vacuum only removes files that no version younger than the retention needs (Delta's own rule), so a
-        `--as-of` read of any version committed within `retention_hours` still succeeds.
+        `--as-of` read of any version committed within `retention_hours` still succeeds. Temporary files that
+        killed writers left in the cache, baselines, reports and catalog are swept by the same age rule.
         """
         from deltalake import DeltaTable
 
@@ -343,4 +370,5 @@ class Store:
                                 enforce_retention_duration=retention_hours >= 168)
             out[name] = {"files_added": metrics.get("numFilesAdded"), "files_removed": metrics.get("numFilesRemoved"),
                          "vacuumed": len(removed), "version": DeltaTable(str(path)).version()}
+        out["temporary_files"] = self.sweep_temporary(retention_hours)
         return out
