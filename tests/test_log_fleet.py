@@ -1,7 +1,7 @@
 """Log recordings through `fleetsift run`: a fleet of PX4 ULog files, and a fleet where one recording is a ROS 2 bag.
 
 The ULog files are written at test time with tests/ulog_spec.py (the published "ULog File Format" specification);
-the bag with rosbags' own writer (fleetsift.demo_bag.recording_to_bag). Every run is the CLI in a child process.
+the bag with rosbags' own writer (fleetsift.demo.bag.recording_to_bag). Every run is the CLI in a child process.
 """
 
 from __future__ import annotations
