@@ -7,8 +7,8 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from fleetsift.scoring.evaluation import (hanley_mcneil_se, label_windows, outlier_baselines, read_labels, roc_auc,
-                                    roc_curve, tangent_vectors)
+from fleetsift.scoring.evaluation import (hanley_mcneil_se, label_windows, outlier_baselines, read_labels,
+                                          roc_auc, roc_curve, tangent_vectors)
 from fleetsift.profile import Profile
 from fleetsift.store import Store
 from fleetsift.vocabulary import METRICS

@@ -14,8 +14,8 @@ from inboxes import table_inbox  # tests/ is on sys.path under pytest
 
 from fleetsift.scoring import baseline as scoring
 from fleetsift.scoring import fleet
-from fleetsift.scoring.evaluation import (hanley_mcneil_se, label_windows, outlier_baselines, read_labels, roc_auc,
-                                    roc_curve, tangent_vectors, window_descriptors)
+from fleetsift.scoring.evaluation import (hanley_mcneil_se, label_windows, outlier_baselines, read_labels,
+                                          roc_auc, roc_curve, tangent_vectors, window_descriptors)
 from fleetsift.errors import InputError
 from fleetsift.profile import Descriptor, Profile, Scoring, TableStream, Windowing
 
