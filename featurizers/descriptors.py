@@ -10,11 +10,12 @@ from __future__ import annotations
 import numpy as np
 
 from fleetsift.errors import InputError
+from fleetsift.profile import Descriptor
+from fleetsift.vocabulary import DESCRIPTOR_KINDS
 
-__all__ = ["KINDS", "RIDGE_RANGE", "baseline_ridge", "ledoit_wolf", "oas", "rbf_kernel_matrix", "lagged_covariance",
+__all__ = ["RIDGE_RANGE", "baseline_ridge", "ledoit_wolf", "oas", "rbf_kernel_matrix", "lagged_covariance",
            "lagged_groups", "gaussian_embedding", "describe"]
 
-KINDS = ("ledoit_wolf", "oas", "rbf", "lagged")
 _SRC = "fleetsift.featurizers.descriptors"
 
 
@@ -141,7 +142,7 @@ def _delay_embed(X: np.ndarray, lags: int) -> np.ndarray:
     return np.concatenate([X[:, lags - l:n - l, :] for l in range(lags + 1)], axis=2)
 
 
-def lagged_covariance(X, lags: int = 3, shrinkage: str = "ledoit_wolf") -> np.ndarray:
+def lagged_covariance(X, lags: int = Descriptor.lags, shrinkage: str = "ledoit_wolf") -> np.ndarray:
     """Shrunk covariance of the delay embedding ``[x(t), x(t-1), ..., x(t-L)]`` -> ``(w, c(L+1), c(L+1))``.
 
     Captures the windows' dynamics (auto- and cross-covariances up to lag L) as well as their spread. Rows are
@@ -209,7 +210,8 @@ def baseline_ridge(samples) -> float:
     return float(np.clip(np.linalg.eigvalsh(C)[0], lo, hi))
 
 
-def describe(X, kind: str = "ledoit_wolf", include_mean: bool = True, lags: int = 3, ridge: float | str = "auto"):
+def describe(X, kind: str = Descriptor.kind, include_mean: bool = Descriptor.include_mean, lags: int = Descriptor.lags,
+             ridge: float | str = Descriptor.ridge):
     """SPD descriptor of every window -> ``(descriptors (n, d, d), groups (d,))``.
 
     ``kind``: ``"ledoit_wolf"`` / ``"oas"`` (shrunk covariance, c x c), ``"rbf"`` (kernel between channels,
@@ -225,8 +227,8 @@ def describe(X, kind: str = "ledoit_wolf", include_mean: bool = True, lags: int 
 
     ``groups`` maps each dimension to its channel index, ``-1`` for the extra dimension of the mean embedding.
     """
-    if kind not in KINDS:
-        raise InputError(_SRC, "kind", f"one of {KINDS}", repr(kind))
+    if kind not in DESCRIPTOR_KINDS:
+        raise InputError(_SRC, "kind", f"one of {DESCRIPTOR_KINDS}", repr(kind))
     X = _windows(X, min_samples=(int(lags) + 2) if kind == "lagged" else 2)
     if isinstance(ridge, str):
         if ridge != "auto":

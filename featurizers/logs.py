@@ -20,11 +20,11 @@ from pathlib import Path
 import numpy as np
 
 from fleetsift.errors import InputError
+from fleetsift.vocabulary import STAMP_SOURCES
 
 ULOG_SUFFIXES = (".ulg",)
 BAG_SUFFIXES = (".mcap", ".db3")
 ULOG_TIME_FIELDS = ("timestamp", "timestamp_sample")
-BAG_STAMPS = ("header", "receive")
 IMU_TYPE = "sensor_msgs/msg/Imu"
 IMU_DEFAULT = ["angular_velocity", "linear_acceleration"]
 IMAGE_TYPES = ("sensor_msgs/msg/Image", "sensor_msgs/msg/CompressedImage")
@@ -273,8 +273,8 @@ def _stamp_s(msg, receive_ns: int, use_header: bool) -> float:
 
 
 def _check_stamp(p: Path, stamp: str) -> None:
-    if stamp not in BAG_STAMPS:
-        raise InputError(p, "stamp", f"one of {BAG_STAMPS}", repr(stamp))
+    if stamp not in STAMP_SOURCES:
+        raise InputError(p, "stamp", f"one of {STAMP_SOURCES}", repr(stamp))
 
 
 def read_bag_topic(path: str | Path, topic: str, fields: Sequence[str] | None = None, stamp: str = "header"):

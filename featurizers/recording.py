@@ -11,9 +11,8 @@ from pathlib import Path
 import numpy as np
 
 from fleetsift.errors import InputError
+from fleetsift.featurizers.logs import BAG_SUFFIXES, ULOG_SUFFIXES
 from fleetsift.featurizers.tables import RawTable, clean_table, read_table_file, resample, uniform_clock
-
-LOG_SUFFIXES = (".ulg", ".mcap", ".db3")
 
 
 def resolve_stream_file(rec_dir: Path, pattern: str, stream: str) -> Path:
@@ -69,7 +68,7 @@ def read_table_stream(rec_dir: Path, stream) -> RawTable:
     path = resolve_stream_file(rec_dir, stream.file, stream.name)
     source = list(stream.fields) or list(stream.channels)
     gaps: list[tuple[float, float]] = []
-    if path.suffix.lower() in LOG_SUFFIXES or path.is_dir():
+    if path.suffix.lower() in ULOG_SUFFIXES + BAG_SUFFIXES or path.is_dir():
         from fleetsift.featurizers import logs
 
         kind = logs.log_kind(path)

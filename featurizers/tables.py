@@ -14,8 +14,8 @@ import pandas as pd
 from scipy import signal
 
 from fleetsift.errors import InputError
+from fleetsift.vocabulary import TIME_UNITS
 
-TIME_UNITS = {"s": 1.0, "ms": 1e-3, "us": 1e-6, "ns": 1e-9}
 # Share of rows that may be repaired (non-finite cells, out-of-order stamps) before the stream counts as broken.
 MAX_REPAIR_SHARE = 0.05
 

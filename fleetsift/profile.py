@@ -1,7 +1,8 @@
 """Sensor profile: a TOML file that says how to read a recording's streams and how to window and score them.
 
 Every key is validated; unknown keys are errors (a typo must never be silently ignored). Errors name the file, the
-key, what was expected and what was found.
+key, what was expected and what was found. The dataclasses' field defaults are the one source of every default:
+the Python API functions (descriptors.describe, baseline.fit_baseline, embed.embed_frames, ...) read theirs here.
 """
 
 from __future__ import annotations
@@ -15,20 +16,10 @@ from pathlib import Path
 from typing import Any
 
 from fleetsift.errors import ProfileError
+from fleetsift.vocabulary import (BASELINE_SOURCES, DESCRIPTOR_KINDS, KNN_STATS, KNN_UNITS, METRICS, SCORING_METHODS,
+                                  STAMP_SOURCES, STREAM_KINDS, TIME_UNITS)
 
 PROFILE_NAME = "profile.toml"
-TIME_UNITS = {"s": 1.0, "ms": 1e-3, "us": 1e-6, "ns": 1e-9}
-DESCRIPTOR_KINDS = ("ledoit_wolf", "oas", "rbf", "lagged")
-METRICS = ("riemann", "logeuclid", "euclid")
-# knn: k-th nearest neighbour distance; density: local outlier factor; mean: distance to the Fréchet mean.
-SCORING_METHODS = ("knn", "density", "mean")
-KNN_STATS = ("kth", "mean")
-# Neighbours counted in recordings (the nearest window of each of the k nearest recordings) or in windows.
-KNN_UNITS = ("recording", "window")
-# Where a night's references come from: earlier nights' unflagged windows, tonight's batch, chosen recordings.
-BASELINE_SOURCES = ("history", "batch", "recordings")
-STREAM_KINDS = ("table", "video")
-STAMP_SOURCES = ("header", "receive")
 
 
 @dataclass(frozen=True)

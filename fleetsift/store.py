@@ -12,6 +12,7 @@ Layout of a store folder:
 
 from __future__ import annotations
 
+import ast
 import contextlib
 import errno
 import fcntl
@@ -30,7 +31,7 @@ import numpy as np
 import pandas as pd
 import pyarrow as pa
 
-from fleetsift import __version__
+from fleetsift import __version__, codebase
 from fleetsift.errors import StoreLockedError
 
 TABLE_SCHEMAS: dict[str, pa.Schema] = {
@@ -97,24 +98,40 @@ TABLES = tuple(TABLE_SCHEMAS)
 
 
 def code_version(*objects: Any) -> str:
-    """A stage's code version: the hash of the source of the modules it runs (so an edit invalidates its cache).
+    """A stage's code version: the hash of the source of what it runs (so an edit invalidates its cache).
 
-    A module may be given by its dotted name: its source file is read without importing it (so building a key
-    for the embedding stage does not load torch).
+    Each object is a module of the package by dotted name (its source file is read without importing it, so
+    building a key for the embedding stage does not load torch), ``"module:function"`` for one function of such
+    a module, or any other object, whose source ``inspect`` finds.
     """
     h = hashlib.sha256(__version__.encode())
     for obj in objects:
-        try:
-            if isinstance(obj, str):
-                spec = importlib.util.find_spec(obj)
-                if spec is None or not spec.origin:
-                    raise OSError(obj)
-                h.update(Path(spec.origin).read_text(encoding="utf-8").encode())
-            else:
+        if isinstance(obj, str):
+            h.update(obj.encode())
+            h.update(_source_of(obj).encode())
+        else:
+            try:
                 h.update(inspect.getsource(obj).encode())
-        except (OSError, TypeError):
-            h.update(repr(obj).encode())
+            except (OSError, TypeError):
+                h.update(repr(obj).encode())
     return h.hexdigest()[:16]
+
+
+def _source_of(name: str) -> str:
+    module, _, function = name.partition(":")
+    if module in codebase.module_files():
+        src = codebase.read_source(module)
+    else:
+        spec = importlib.util.find_spec(module)
+        if spec is None or not spec.origin or not Path(spec.origin).is_file():
+            raise ValueError(f"code_version: no source file for module {module!r}")
+        src = Path(spec.origin).read_text(encoding="utf-8")
+    if not function:
+        return src
+    for node in ast.parse(src).body:
+        if isinstance(node, (ast.FunctionDef, ast.AsyncFunctionDef, ast.ClassDef)) and node.name == function:
+            return ast.get_source_segment(src, node) or ""
+    raise ValueError(f"code_version: {module} has no top-level function {function!r}")
 
 
 def stage_key(stage: str, content_hash: str, section: Any, version: str) -> str:
@@ -337,11 +354,38 @@ class Store:
                     rows.append({"version": v, **r})
         return pd.DataFrame(rows, columns=cols)
 
+    def sweep_temporary(self, older_than_hours: float, now: float | None = None) -> dict[str, int]:
+        """Remove the temporary files of killed writers older than ``older_than_hours``; returns counts.
+
+        Atomic writes leave ``.NAME.XXXX.tmp`` (stage cache, baselines, catalog) or ``NAME.tmp`` (score staging
+        Parquet, reports) only when the writer dies between writing and renaming. Files younger than the age limit
+        are kept: they may belong to a writer that is still running (`maintain` holds the store's lock, but a
+        report written outside the store's runs does not take it).
+        """
+        limit = (time.time() if now is None else now) - float(older_than_hours) * 3600.0
+        found = [p for p in self.root.glob("*.tmp")]
+        for sub in ("cache", "baselines", "reports"):
+            found += (self.root / sub).rglob("*.tmp")
+        removed = kept = 0
+        for p in found:
+            try:
+                if not p.is_file() or p.is_symlink():
+                    continue
+                if p.stat().st_mtime < limit:
+                    p.unlink()
+                    removed += 1
+                else:
+                    kept += 1
+            except FileNotFoundError:  # renamed or removed meanwhile by its writer
+                continue
+        return {"removed": removed, "kept_recent": kept}
+
     def maintain(self, retention_hours: float = 168.0) -> dict[str, dict]:
         """Compact small files and vacuum files older than the retention; time travel inside it keeps working.
 
         Vacuum only removes files that no version younger than the retention needs (Delta's own rule), so a
-        `--as-of` read of any version committed within `retention_hours` still succeeds.
+        `--as-of` read of any version committed within `retention_hours` still succeeds. Temporary files that
+        killed writers left in the cache, baselines, reports and catalog are swept by the same age rule.
         """
         from deltalake import DeltaTable
 
@@ -356,4 +400,5 @@ class Store:
                                 enforce_retention_duration=retention_hours >= 168)
             out[name] = {"files_added": metrics.get("numFilesAdded"), "files_removed": metrics.get("numFilesRemoved"),
                          "vacuumed": len(removed), "version": DeltaTable(str(path)).version()}
+        out["temporary_files"] = self.sweep_temporary(retention_hours)
         return out

@@ -10,10 +10,10 @@ import tempfile
 from pathlib import Path
 
 from fleetsift.flows import env
+from fleetsift.safety import SAFETY_NOTE
+from fleetsift.vocabulary import VERDICTS
 
 EXIT_OK, EXIT_ERROR, EXIT_USAGE, EXIT_QUARANTINED, EXIT_LOCKED = 0, 1, 2, 3, 4
-SAFETY_NOTE = ("Scores are a screening aid, not a certification of airworthiness or roadworthiness: follow your "
-               "operator's procedures and local rules before grounding or releasing a vehicle.")
 
 
 def _num(x):
@@ -377,7 +377,7 @@ def build_parser() -> argparse.ArgumentParser:
                     help="a reviewed window, e.g. rover-01-zone-s:12 (repeatable)")
     rv.add_argument("--recording", action="append", metavar="RECORDING",
                     help="a whole reviewed recording (repeatable)")
-    rv.add_argument("--verdict", required=True, choices=("normal", "fault"),
+    rv.add_argument("--verdict", required=True, choices=VERDICTS,
                     help="normal: the window joins the baseline and is not flagged again; fault: it never joins")
     rv.add_argument("--note", help="free text kept with the verdict")
     rv.add_argument("--reviewer", help="who reviewed (default: the login name)")

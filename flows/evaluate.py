@@ -12,8 +12,8 @@ from fleetsift.scoring.evaluation import (hanley_mcneil_se, ignored_windows, lab
 from fleetsift.errors import InputError
 from fleetsift.profile import Profile
 from fleetsift.store import Store
+from fleetsift.vocabulary import METRICS
 
-METRICS = ("riemann", "logeuclid", "euclid")
 BASELINES = ("isolation_forest", "local_outlier_factor")
 BASELINE_FEATURES = ("tangent vectors of each descriptor block at its riemann baseline's Frechet mean M, side by "
                      "side: upper triangle of logm(M^-1/2 X M^-1/2), off-diagonals x sqrt(2) (Barachant et al. 2012)")
@@ -25,34 +25,21 @@ def prepare(inbox: str, store: str, profile_path: str | None = None, progress: b
 
     Returns (fleet profile, prepared [{"tables": .., "embed": ..}] for the recordings that made it, quarantined
     [{"recording_id", "reason"}]). ``tables_fn``/``embed_fn`` default to the plain stage functions; a flow passes
-    its Prefect tasks. The per-recording profile is merged exactly as the nightly flow does.
+    its Prefect tasks. The recordings are prepared by the nightly run's own code (flows.night.prepare_recordings),
+    so the same recordings are quarantined for the same reasons.
     """
     from fleetsift.flows import env
 
-    env.configure(store)  # the stage modules import Prefect, which reads its settings at import time
-    from fleetsift.profile import profile_for
-    from fleetsift.flows.night import discover, fleet_profile
+    env.configure(store)  # a flow's tasks import Prefect, which reads its settings at import time
+    from fleetsift.flows.night import discover, fleet_profile, prepare_recordings
     from fleetsift.tasks import stages
 
-    tables_fn = tables_fn or stages.run_tables
-    embed_fn = embed_fn or stages.run_embed
     inbox_p = Path(inbox).resolve()
     fleet = fleet_profile(inbox_p, profile_path)
-    prepared, bad = [], []
-    for rec in discover(inbox_p):
-        try:
-            own = profile_for(rec, fleet)
-        except InputError as e:
-            bad.append({"recording_id": rec.name, "reason": str(e)})
-            continue
-        prof = Profile(path=own.path, streams=own.streams, windowing=fleet.windowing, descriptor=fleet.descriptor,
-                       scoring=fleet.scoring, baseline=fleet.baseline)
-        tab = tables_fn(str(rec), prof, str(store))
-        emb = embed_fn(str(rec), prof, str(store), progress) if tab["status"] == "ok" else tab
-        if tab["status"] != "ok" or emb["status"] != "ok":
-            bad.append({"recording_id": rec.name, "reason": (emb if tab["status"] == "ok" else tab)["reason"]})
-            continue
-        prepared.append({"tables": tab, "embed": emb})
+    prepared, rows, _ = prepare_recordings(tables_fn or stages.run_tables, embed_fn or stages.run_embed, fleet,
+                                           discover(inbox_p), str(store), progress=progress)
+    bad = [{"recording_id": r["recording_id"], "reason": r["reason"]} for _, r in sorted(rows.items())
+           if r["status"] == "quarantined"]
     return fleet, prepared, bad
 
 

@@ -79,6 +79,63 @@ def rebuild_plan(fleet: Profile, rebuild: tuple[str, ...]) -> dict[str, Any]:
     return {"tables": tables, "embed": embed, "score": bool(rebuild)}
 
 
+def prepare_recordings(tables: Callable[..., dict], embed: Callable[..., dict], fleet: Profile, recs: list[Path],
+                       store: str, *, parallel: bool = False, progress: bool = True, force_tables: bool = False,
+                       force_embed: tuple[str, ...] = ()) -> tuple[list[dict], dict[str, dict], dict[str, dict]]:
+    """Each recording's table and video stage outputs (computed, or taken from the store's cache) and its outcome.
+
+    ``tables``/``embed`` are the stage callables (Prefect tasks with ``.submit`` when ``parallel``). A recording
+    is read with its own profile laid over the fleet's (windowing, descriptor and scoring stay the fleet's), and
+    quarantined with the reason when that profile does not parse, a stage fails on it or it is shorter than one
+    window. Returns (prepared ``[{"tables", "embed"}]`` of the recordings to score, rows ``{recording id: its
+    recordings-table row}`` for every recording, stats ``{"tables"|"embed": {"computed", "reused"}}``).
+    """
+    rows: dict[str, dict] = {}
+    jobs: list[tuple[str, Profile]] = []
+    for rec in recs:
+        try:
+            prof = profile_for(rec, fleet)
+        except InputError as e:
+            rows[rec.name] = {"recording_id": rec.name, "content_hash": "", "duration_s": None,
+                              "status": "quarantined", "reason": str(e)}
+            continue
+        # Windowing, descriptor and scoring are the fleet's; a recording's own profile may only re-describe streams.
+        jobs.append((str(rec), Profile(path=prof.path, streams=prof.streams, windowing=fleet.windowing,
+                                       descriptor=fleet.descriptor, scoring=fleet.scoring, baseline=fleet.baseline)))
+
+    if parallel:
+        tab_f = [tables.submit(r, p, store, force=force_tables) for r, p in jobs]
+        emb_f = [embed.submit(r, p, store, False, force_streams=force_embed) for r, p in jobs]
+        tabs = [f.result() for f in tab_f]
+        embs = [f.result() for f in emb_f]
+    else:
+        tabs = [tables(r, p, store, force=force_tables) for r, p in jobs]
+        embs = [embed(r, p, store, progress, force_streams=force_embed) for r, p in jobs]
+
+    prepared = []
+    stats = {"tables": {"computed": 0, "reused": 0}, "embed": {"computed": 0, "reused": 0}}
+    for (rec, prof), tab, emb in zip(jobs, tabs, embs):
+        name = Path(rec).name
+        if tab["status"] == "ok":
+            stats["tables"]["reused" if tab["reused"] else "computed"] += 1
+        if emb["status"] == "ok":
+            stats["embed"]["reused"] += emb["reused"]
+            stats["embed"]["computed"] += emb["computed"]
+        if tab["status"] == "ok" and tab["duration_s"] < fleet.windowing.window_s:
+            tab = {"status": "quarantined", "content": tab["content"], "duration_s": tab["duration_s"],
+                   "reason": f"{rec}: windowing.window_s: expected a recording at least one window "
+                             f"({fleet.windowing.window_s:g} s) long, got {tab['duration_s']:.3g} s"}
+        bad = next((x for x in (tab, emb) if x["status"] != "ok"), None)
+        if bad is not None:
+            rows[name] = {"recording_id": name, "content_hash": tab.get("content", ""),
+                          "duration_s": tab.get("duration_s"), "status": "quarantined", "reason": bad["reason"]}
+            continue
+        prepared.append({"tables": tab, "embed": emb})
+        rows[name] = {"recording_id": name, "content_hash": tab["content"], "duration_s": tab["duration_s"],
+                      "status": "scored", "reason": ""}
+    return prepared, rows, stats
+
+
 def run_night(steps: Steps, inbox: str, store: str, profile_path: str | None = None, run_id: str | None = None,
               parallel: bool = False, progress: bool = True, rebuild: tuple[str, ...] = ()) -> dict[str, Any]:
     """Score every recording in the inbox against the fleet's baseline and append the run to the store.
@@ -93,50 +150,10 @@ def run_night(steps: Steps, inbox: str, store: str, profile_path: str | None = N
     force = rebuild_plan(fleet, tuple(rebuild))
     recs = discover(inbox_p)
 
-    rec_rows: dict[str, dict] = {}
-    jobs: list[tuple[str, Profile]] = []
-    for rec in recs:
-        try:
-            prof = profile_for(rec, fleet)
-        except InputError as e:
-            rec_rows[rec.name] = {"recording_id": rec.name, "content_hash": "", "duration_s": None,
-                                  "status": "quarantined", "reason": str(e)}
-            continue
-        # Windowing, descriptor and scoring are the fleet's; a recording's own profile may only re-describe streams.
-        jobs.append((str(rec), Profile(path=prof.path, streams=prof.streams, windowing=fleet.windowing,
-                                       descriptor=fleet.descriptor, scoring=fleet.scoring, baseline=fleet.baseline)))
-
-    if parallel:
-        tab_f = [steps.tables.submit(r, p, str(st.root), force=force["tables"]) for r, p in jobs]
-        emb_f = [steps.embed.submit(r, p, str(st.root), False, force_streams=force["embed"]) for r, p in jobs]
-        tabs = [f.result() for f in tab_f]
-        embs = [f.result() for f in emb_f]
-    else:
-        tabs = [steps.tables(r, p, str(st.root), force=force["tables"]) for r, p in jobs]
-        embs = [steps.embed(r, p, str(st.root), progress, force_streams=force["embed"]) for r, p in jobs]
-
-    prepared = []
-    stats = {"tables": {"computed": 0, "reused": 0}, "embed": {"computed": 0, "reused": 0},
-             "score": {"computed": 0, "reused": 0}}
-    for (rec, prof), tab, emb in zip(jobs, tabs, embs):
-        name = Path(rec).name
-        if tab["status"] == "ok":
-            stats["tables"]["reused" if tab["reused"] else "computed"] += 1
-        if emb["status"] == "ok":
-            stats["embed"]["reused"] += emb["reused"]
-            stats["embed"]["computed"] += emb["computed"]
-        if tab["status"] == "ok" and tab["duration_s"] < fleet.windowing.window_s:
-            tab = {"status": "quarantined", "content": tab["content"], "duration_s": tab["duration_s"],
-                   "reason": f"{rec}: windowing.window_s: expected a recording at least one window "
-                             f"({fleet.windowing.window_s:g} s) long, got {tab['duration_s']:.3g} s"}
-        bad = next((x for x in (tab, emb) if x["status"] != "ok"), None)
-        if bad is not None:
-            rec_rows[name] = {"recording_id": name, "content_hash": tab.get("content", ""),
-                              "duration_s": tab.get("duration_s"), "status": "quarantined", "reason": bad["reason"]}
-            continue
-        prepared.append({"tables": tab, "embed": emb})
-        rec_rows[name] = {"recording_id": name, "content_hash": tab["content"], "duration_s": tab["duration_s"],
-                          "status": "scored", "reason": ""}
+    prepared, rec_rows, stats = prepare_recordings(steps.tables, steps.embed, fleet, recs, str(st.root),
+                                                   parallel=parallel, progress=progress, force_tables=force["tables"],
+                                                   force_embed=force["embed"])
+    stats["score"] = {"computed": 0, "reused": 0}
 
     score = None
     if prepared:

@@ -20,12 +20,8 @@ import pandas as pd
 
 from fleetsift import __version__
 from fleetsift.store import Store
+from fleetsift.safety import SAFETY_NOTE
 
-SAFETY_NOTE = ("These scores are a screening aid, not a certification of airworthiness or roadworthiness. They "
-               "point an engineer at recordings and seconds worth a look; whether to ground, repair or release a "
-               "vehicle is decided by the operator's own procedures and the local rules, which this report does "
-               "not replace.")
-METRICS = ("riemann", "logeuclid", "euclid")
 TOP_N = 10
 THUMB_W = 176  # px; three JPEG thumbnails per window stay ~15 KB
 PLOT_DPI = 90
@@ -375,9 +371,12 @@ def _references_html(st: Store, run) -> str:
     if "info" not in a:
         return ""
     info = json.loads(str(a["info"]))
-    src = {"history": "earlier nights' windows (the fleet's history)",
-           "batch": "this run's own windows, robustly trimmed (a first night, or a profile change)",
-           "recordings": "the recordings the profile lists"}.get(info["source"], info["source"])
+    from fleetsift.vocabulary import BASELINE_SOURCES
+
+    what = ("earlier nights' windows (the fleet's history)",
+            "this run's own windows, robustly trimmed (a first night, or a profile change)",
+            "the recordings the profile lists")
+    src = dict(zip(BASELINE_SOURCES, what)).get(info["source"], info["source"])
     runs = info.get("reference_runs") or []
     extra = []
     if runs:

@@ -38,9 +38,10 @@ from prefect.task_runners import ThreadPoolTaskRunner
 from fleetsift.scoring import fleet
 from fleetsift.scoring.evaluation import hanley_mcneil_se, label_windows, read_labels, roc_auc
 from fleetsift.errors import InputError
-from fleetsift.profile import DESCRIPTOR_KINDS, METRICS, Profile
+from fleetsift.profile import Profile
 from fleetsift.flows.evaluate import prepare
 from fleetsift.tasks import flow_tasks, stages
+from fleetsift.vocabulary import DESCRIPTOR_KINDS, METRICS
 
 PARAMS = ("window_s", "hop_s", "k", "kind", "metric", "ridge")
 DESIGNS = ("one_at_a_time", "full")

@@ -23,20 +23,20 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from fleetsift.errors import InputError
-from fleetsift.profile import KNN_UNITS as UNITS
-from fleetsift.profile import SCORING_METHODS as METHODS
-from fleetsift.profile import Scoring as _DEF
+from fleetsift.profile import Scoring
 from fleetsift.scoring import geometry
 from fleetsift.scoring.index import KNNIndex
+from fleetsift.vocabulary import KNN_STATS
+from fleetsift.vocabulary import KNN_UNITS as UNITS
+from fleetsift.vocabulary import SCORING_METHODS as METHODS
 
-__all__ = ["MAD_SCALE", "STATS", "METHODS", "UNITS", "exclusion_mask", "neighbours", "knn_scores", "mean_scores",
+__all__ = ["MAD_SCALE", "METHODS", "UNITS", "exclusion_mask", "neighbours", "knn_scores", "mean_scores",
            "local_outlier_factors", "robust_z", "median_mad", "threshold", "riemannian_potato", "Potato", "Baseline",
            "fit_baseline", "fit_references", "raw_scores", "score", "zscore", "attribute", "top_channels",
            "OnlineScorer"]
 
 # MAD -> standard deviation for Gaussian data: 1 / Phi^-1(3/4) (common practice).
 MAD_SCALE = 1.4826
-STATS = ("kth", "mean")
 _SRC = "fleetsift.scoring.baseline"
 
 
@@ -78,7 +78,7 @@ def robust_z(d, ref_d) -> np.ndarray:
     return (d - med) / scale
 
 
-def threshold(ref_scores, c: float = 3.0) -> float:
+def threshold(ref_scores, c: float = Scoring.threshold_c) -> float:
     """Flagging threshold ``median + c * 1.4826 * MAD`` of the finite reference scores.
 
     1.4826 * MAD is the Gaussian-consistent robust standard deviation (common practice), so ``c = 3`` is the
@@ -112,8 +112,8 @@ def exclusion_mask(q_rec, q_t, r_rec, r_t, zone_s: float) -> np.ndarray:
 
 
 def _check_stat(stat: str) -> str:
-    if stat not in STATS:
-        raise InputError(_SRC, "stat", f"one of {STATS}", repr(stat))
+    if stat not in KNN_STATS:
+        raise InputError(_SRC, "stat", f"one of {KNN_STATS}", repr(stat))
     return stat
 
 
@@ -155,8 +155,8 @@ def neighbours(queries, index: KNNIndex, k: int, unit: str = "window", ref_group
     return index.query_groups(queries, k, ref_groups, exclude=exclude, _self=_self)
 
 
-def knn_scores(queries, references, k: int, metric: str = "riemann", stat: str = "kth", exclude=None,
-               index: KNNIndex | None = None, unit: str = "window", ref_groups=None) -> np.ndarray:
+def knn_scores(queries, references, k: int = Scoring.k, metric: str = Scoring.metric, stat: str = Scoring.knn_stat,
+               exclude=None, index: KNNIndex | None = None, unit: str = "window", ref_groups=None) -> np.ndarray:
     """kNN score of each query -> ``(n,)``: the k-th (``stat="kth"``) or mean (``"mean"``) of its k exact
     nearest-neighbour distances (see :func:`neighbours` for ``unit``).
 
@@ -172,7 +172,7 @@ def knn_scores(queries, references, k: int, metric: str = "riemann", stat: str =
     return _stat(dist, int(k), stat, partial=unit == "recording")
 
 
-def mean_scores(queries, mean, metric: str = "riemann") -> np.ndarray:
+def mean_scores(queries, mean, metric: str = Scoring.metric) -> np.ndarray:
     """Distance of each query ``(n, d, d)`` to a Fréchet mean ``(d, d)`` -> ``(n,)``."""
     return np.asarray(geometry.distance(queries, mean, metric)).reshape(-1)
 
@@ -207,14 +207,15 @@ class Potato:
     mad: float
     n_iter: int
 
-    def z(self, X, metric: str = "riemann") -> np.ndarray:
+    def z(self, X, metric: str = Scoring.metric) -> np.ndarray:
         """Robust z-scores of new matrices' distances to the potato's mean."""
         d = mean_scores(X, self.mean, metric)
         scale = MAD_SCALE * self.mad
         return (d - self.median) / scale if scale > 0 else np.where(d == self.median, 0.0, np.inf)
 
 
-def riemannian_potato(references, metric: str = "riemann", z_threshold: float = 3.0, max_iter: int = 10) -> Potato:
+def riemannian_potato(references, metric: str = Scoring.metric, z_threshold: float = 3.0,
+                      max_iter: int = 10) -> Potato:
     """Riemannian potato (Barachant et al. 2013): iteratively reject outliers before re-estimating the mean.
 
     Each round computes the Fréchet mean of the kept matrices, the distances of *all* matrices to it, and keeps
@@ -270,7 +271,7 @@ class Baseline:
     kept: np.ndarray
     ref_index: np.ndarray = field(default_factory=lambda: np.zeros(0, np.int64))
     initial_scores: np.ndarray = field(default_factory=lambda: np.zeros(0))
-    c: float = 3.0
+    c: float = Scoring.threshold_c
     median: float = float("nan")
     mad: float = float("nan")
     method: str = "knn"
@@ -321,9 +322,9 @@ def _self_scores(D, rec, t, *, k, metric, stat, zone_s, method, unit, index=None
     return lof, mean, kd, lrd
 
 
-def fit_references(references, rec_ids, times, k: int = _DEF.k, metric: str = _DEF.metric,
-                   stat: str = _DEF.knn_stat, zone_s: float = _DEF.exclusion_s, c: float = _DEF.threshold_c,
-                   method: str = _DEF.method, unit: str = _DEF.knn_unit, approved=None) -> Baseline:
+def fit_references(references, rec_ids, times, k: int = Scoring.k, metric: str = Scoring.metric,
+                   stat: str = Scoring.knn_stat, zone_s: float = Scoring.exclusion_s, c: float = Scoring.threshold_c,
+                   method: str = Scoring.method, unit: str = Scoring.knn_unit, approved=None) -> Baseline:
     """A baseline from references taken as normal as they stand (no trimming): a fleet's history, chosen
     recordings. Leave-one-out scores among the references give the robust scale and the threshold."""
     geometry._check_metric(metric)
@@ -350,10 +351,11 @@ def fit_references(references, rec_ids, times, k: int = _DEF.k, metric: str = _D
                     method=method, unit=unit, scale=scale, ref_kdist=kd, ref_lrd=lrd, approved=ap)
 
 
-def fit_baseline(descriptors, rec_ids, times, k: int = _DEF.k, metric: str = _DEF.metric, stat: str = _DEF.knn_stat,
-                 zone_s: float = _DEF.exclusion_s, trim_fraction: float = _DEF.trim_fraction,
-                 c: float = _DEF.threshold_c, max_refs: int | None = None, method: str = _DEF.method,
-                 unit: str = _DEF.knn_unit) -> Baseline:
+def fit_baseline(descriptors, rec_ids, times, k: int = Scoring.k, metric: str = Scoring.metric,
+                 stat: str = Scoring.knn_stat,
+                 zone_s: float = Scoring.exclusion_s, trim_fraction: float = Scoring.trim_fraction,
+                 c: float = Scoring.threshold_c, max_refs: int | None = None, method: str = Scoring.method,
+                 unit: str = Scoring.knn_unit) -> Baseline:
     """Fit a robust baseline from windows that are mostly normal (a first night, chosen recordings).
 
     1. Leave-one-out score of every window against all others (``method``, with :func:`exclusion_mask`).
@@ -463,7 +465,7 @@ def attribute(descriptors, ref_mean, groups, n_groups: int) -> np.ndarray:
     return np.where(still | (tot <= 0), 1.0 / n_groups, S / np.where(tot > 0, tot, 1.0))
 
 
-def top_channels(shares, names, top: int = 3) -> list[list[tuple[str, float]]]:
+def top_channels(shares, names, top: int = Scoring.top_channels) -> list[list[tuple[str, float]]]:
     """The ``top`` largest shares of each window as ``[(name, share), ...]``, largest first."""
     shares = np.asarray(shares, dtype=np.float64)
     names = list(names)

@@ -23,8 +23,8 @@ from fleetsift.featurizers.pca import fit_pca
 from fleetsift.featurizers.tables import cut_windows, place_on_clock, window_starts
 from fleetsift.scoring import baseline
 from fleetsift.scoring.history import Bank, References, Reviews, assemble, guard_band, verdicts_for
+from fleetsift.vocabulary import METRICS
 
-METRICS = ("riemann", "logeuclid", "euclid")
 # Bump when what a bank's descriptors mean changes, so no later night compares with banks of the old meaning.
 SPACE_VERSION = 1
 

@@ -28,15 +28,15 @@ import warnings
 import numpy as np
 
 from fleetsift.errors import InputError
+from fleetsift.vocabulary import SPD_METRICS
 
 __all__ = [
-    "METRICS", "EIG_FLOOR", "SPDWarning", "ConvergenceWarning",
+    "SPD_METRICS", "EIG_FLOOR", "SPDWarning", "ConvergenceWarning",
     "sqrtm", "invsqrtm", "logm", "expm", "powm",
     "distance", "pairwise_distance", "frechet_mean", "geodesic", "log_map", "exp_map",
     "vec", "unvec",
 ]
 
-METRICS = ("riemann", "logeuclid", "euclid", "logdet", "wasserstein")
 EIG_FLOOR = 1e-12
 _SRC = "fleetsift.scoring.geometry"
 # Pair batches for the exact kernels: ~8k 14x14 matrices is ~12 MB per temporary, well inside cache-friendly sizes.
@@ -66,8 +66,8 @@ def _as_spd(X, name: str = "X", min_ndim: int = 2) -> np.ndarray:
 
 
 def _check_metric(metric: str) -> str:
-    if metric not in METRICS:
-        raise InputError(_SRC, "metric", f"one of {METRICS}", repr(metric))
+    if metric not in SPD_METRICS:
+        raise InputError(_SRC, "metric", f"one of {SPD_METRICS}", repr(metric))
     return metric
 
 
@@ -448,36 +448,40 @@ def frechet_mean(X, metric: str = "riemann", weights=None, tol: float = 1e-10, m
     if metric == "riemann":
         return _karcher(X, w, tol, max_iter)
     if metric == "logdet":
-        M = np.tensordot(w, X, axes=1)
         eye = np.eye(X.shape[-1])
-        for _ in range(max_iter):
-            J = np.tensordot(w, np.linalg.solve(0.5 * (M + X), eye), axes=1)
-            M_new = np.linalg.solve(J, eye)
-            M_new = 0.5 * (M_new + M_new.T)
-            crit = np.linalg.norm(M_new - M) / np.linalg.norm(M)
-            M = M_new
-            if crit <= tol:
-                return M
-        _warn_conv("logdet", max_iter, crit, tol)
-        return M
-    # wasserstein
-    M = np.tensordot(w, X, axes=1)
-    for _ in range(max_iter):
+
+        def stein_step(M):  # (sum_i w_i ((M + X_i) / 2)^-1)^-1
+            return np.linalg.solve(np.tensordot(w, np.linalg.solve(0.5 * (M + X), eye), axes=1), eye)
+
+        return _fixed_point_mean(X, w, stein_step, "logdet", tol, max_iter)
+
+    def bures_step(M):  # M^-1/2 (sum_i w_i (M^1/2 X_i M^1/2)^1/2)^2 M^-1/2
         M12, Mm12 = _sqrt_invsqrt(M)
         S = np.tensordot(w, sqrtm(M12 @ X @ M12), axes=1)
-        M_new = Mm12 @ S @ S @ Mm12
+        return Mm12 @ S @ S @ Mm12
+
+    return _fixed_point_mean(X, w, bures_step, "wasserstein", tol, max_iter)
+
+
+def _fixed_point_mean(X: np.ndarray, w: np.ndarray, step, metric: str, tol: float, max_iter: int) -> np.ndarray:
+    """Iterate ``M <- step(M)`` (symmetrised) from the weighted arithmetic mean until the relative change
+    ``||M_new - M||_F / ||M||_F`` is at most ``tol``; warns when ``max_iter`` steps do not get there."""
+    M = np.tensordot(w, X, axes=1)
+    crit = np.inf
+    for _ in range(max_iter):
+        M_new = step(M)
         M_new = 0.5 * (M_new + M_new.T)
         crit = np.linalg.norm(M_new - M) / np.linalg.norm(M)
         M = M_new
         if crit <= tol:
             return M
-    _warn_conv("wasserstein", max_iter, crit, tol)
+    _warn_conv(metric, max_iter, crit, tol, stacklevel=4)
     return M
 
 
-def _warn_conv(metric, max_iter, crit, tol):
+def _warn_conv(metric, max_iter, crit, tol, stacklevel=3):
     warnings.warn(f"frechet_mean({metric}) did not converge in {max_iter} iterations "
-                  f"(criterion {crit:.3g} > tol {tol:.3g})", ConvergenceWarning, stacklevel=3)
+                  f"(criterion {crit:.3g} > tol {tol:.3g})", ConvergenceWarning, stacklevel=stacklevel)
 
 
 def _karcher(X: np.ndarray, w: np.ndarray, tol: float, max_iter: int, warn: bool = True) -> np.ndarray:

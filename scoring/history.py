@@ -13,10 +13,10 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from fleetsift.errors import InputError
+from fleetsift.vocabulary import VERDICTS
 
 __all__ = ["VERDICTS", "Bank", "Reviews", "References", "guard_band", "verdicts_for", "assemble"]
 
-VERDICTS = ("normal", "fault")
 _SRC = "fleetsift.scoring.history"
 
 

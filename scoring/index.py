@@ -9,8 +9,8 @@ from __future__ import annotations
 import numpy as np
 
 from fleetsift.errors import InputError
-from fleetsift.scoring.geometry import (_BLOCK_ENTRIES, _Prep, _as_spd, _check_metric, _karcher, _pair_exact, _sq_norms,
-                                        invsqrtm)
+from fleetsift.scoring.geometry import (_BLOCK_ENTRIES, _Prep, _as_spd, _check_metric, _karcher, _pair_exact,
+                                        _sq_norms, invsqrtm)
 
 __all__ = ["KNNIndex", "knn"]
 

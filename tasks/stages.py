@@ -8,6 +8,7 @@ This module never imports Prefect: a night with nothing to compute runs these fu
 
 from __future__ import annotations
 
+import functools
 import hashlib
 import json
 import sys
@@ -18,9 +19,11 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
+from fleetsift import codebase
 from fleetsift.errors import InputError
 from fleetsift.profile import Profile, VideoStream
 from fleetsift.store import Store, code_version, stage_key
+from fleetsift.vocabulary import METRICS
 from fleetsift.featurizers import recording, video, weights
 from fleetsift.scoring import fleet
 from fleetsift.scoring.history import Bank, Reviews, assemble
@@ -34,17 +37,37 @@ class NotCached(Exception):
     """A stage called with ``cached_only=True`` whose output is not in the cache (raised before any work)."""
 
 
-def _tables_version() -> str:
-    return code_version("fleetsift.featurizers.tables", "fleetsift.featurizers.recording")
+# What each stage runs, by its entry modules: its code version hashes these and every featurizer or scoring module
+# they import (fleetsift.codebase.closure, lazy imports included), the vocabularies, and the stage's own functions
+# below. A module a stage does not reach (the demo's video writer, the PCA for the embeddings) stays out of its
+# version, and so does the rest of the core: the profile values a stage reads are in its key already (its profile
+# section), errors and the store only shape messages and files; so a new profile key never re-embeds a video.
+STAGE_CODE: dict[str, tuple[str, ...]] = {
+    "tables": ("fleetsift.featurizers.recording",),
+    "embed": ("fleetsift.featurizers.video", "fleetsift.featurizers.embed", "fleetsift.featurizers.weights",
+              "fleetsift.featurizers.logs"),  # logs: frames of image topics in ROS 2 bags
+    "score": tuple(codebase.subpackage("fleetsift.scoring")),
+}
+STAGE_FUNCTIONS: dict[str, tuple[str, ...]] = {
+    "tables": ("run_tables",), "embed": ("run_embed", "_frames"),
+    "score": ("run_score", "load_features", "space_key", "table_streams_of", "load_history", "load_reviews",
+              "_history_digest", "_save_baseline"),
+}
 
 
-def _embed_version() -> str:
-    return code_version("fleetsift.featurizers.video", "fleetsift.featurizers.embed", "fleetsift.featurizers.weights")
+_HASHED = ("fleetsift.featurizers", "fleetsift.scoring", "fleetsift.vocabulary")
 
 
-def _score_version() -> str:
-    return code_version(*(f"fleetsift.scoring.{m}" for m in ("fleet", "baseline", "geometry", "index", "history")),
-                        "fleetsift.featurizers.descriptors", "fleetsift.featurizers.pca")
+def stage_modules(stage: str) -> list[str]:
+    """The modules in a stage's code version (sorted): what it runs of the featurizers, scoring and vocabulary."""
+    return [m for m in codebase.closure(STAGE_CODE[stage]) if m.startswith(_HASHED)]
+
+
+@functools.cache
+def stage_version(stage: str) -> str:
+    """The code version in a stage's cache keys: the source of every module and function it runs (read, not
+    imported: the embed stage's key never loads torch). Cached for the process, like the code it describes."""
+    return code_version(*stage_modules(stage), *(f"{__name__}:{f}" for f in STAGE_FUNCTIONS[stage]))
 
 
 def recording_hash(store: Store, rec_dir: Path, files: list[Path]) -> str:
@@ -77,7 +100,7 @@ def run_tables(rec_dir: str, profile: Profile, store_root: str, cached_only: boo
         content = recording_hash(store, rec_dir, files)
         section = {"streams": {s.name: profile.section(f"streams.{s.name}") for s in streams},
                    "rate_hz": profile.windowing.rate_hz, "max_gap_s": profile.windowing.max_gap_s}
-        key = stage_key("tables", content, section, _tables_version())
+        key = stage_key("tables", content, section, stage_version("tables"))
         out = store.cache_path("tables", key)
         if out.exists() and not force:
             meta = json.loads(str(Store.load_arrays(out)["meta"]))
@@ -141,7 +164,7 @@ def run_embed(rec_dir: str, profile: Profile, store_root: str, progress: bool = 
             section = {"file": stream.file, "topic": stream.topic, "stamp": stream.stamp,
                        "sample_hz": stream.sample_hz, "backbone": stream.backbone, "weights": weights_fp,
                        "image_size": stream.image_size}
-            key = stage_key("embed", content, section, _embed_version())
+            key = stage_key("embed", content, section, stage_version("embed"))
             out = store.cache_path("embed", key)
             if out.exists() and stream.name not in force_streams:
                 reused += 1
@@ -194,8 +217,8 @@ def space_key(profile: Profile) -> str:
     section = {k: profile.section(k) for k in ("windowing", "descriptor")}
     section["streams"] = {n: profile.section(f"streams.{n}") for n in sorted(profile.streams)}
     section["trim_fraction"] = profile.scoring.trim_fraction  # the space is fitted on the robustly kept windows
-    version = "/".join([_tables_version(), _embed_version(), code_version("fleetsift.featurizers.descriptors"),
-                        str(fleet.SPACE_VERSION)])
+    version = "/".join([stage_version("tables"), stage_version("embed"),
+                        code_version("fleetsift.featurizers.descriptors"), str(fleet.SPACE_VERSION)])
     return stage_key("space", "", section, version)
 
 
@@ -289,7 +312,7 @@ def run_score(prepared: list[dict], profile: Profile, store_root: str, run_id: s
     reviews, reviews_digest = load_reviews(store)
     section["history"] = _history_digest(parent, banks, reviews, profile)
     section["reviews"] = reviews_digest
-    key = stage_key("score", json.dumps(keys), section, _score_version())
+    key = stage_key("score", json.dumps(keys), section, stage_version("score"))
     out = store.cache_path("score", key).with_suffix(".parquet")
     bank_path = out.with_suffix(".npz")
     if out.exists() and out.with_suffix(".json").exists() and bank_path.exists() and not force:
@@ -310,7 +333,7 @@ def run_score(prepared: list[dict], profile: Profile, store_root: str, run_id: s
     rows = []
     for w in res.windows:
         n = len(w.t_start)
-        for m in fleet.METRICS:
+        for m in METRICS:
             rows.append(pd.DataFrame({
                 "recording_id": w.recording_id, "window_index": np.arange(n, dtype=np.int64),
                 "t_start_s": w.t_start, "t_end_s": w.t_end, "metric": m, "score": w.scores[m],

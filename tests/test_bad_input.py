@@ -8,7 +8,6 @@ field, what was expected and what was found.
 
 from __future__ import annotations
 
-import json
 import logging
 import os
 from pathlib import Path
@@ -17,6 +16,7 @@ import av
 import numpy as np
 import pandas as pd
 import pytest
+from inboxes import profile_toml  # tests/ is on sys.path under pytest
 
 from fleetsift.errors import InputError, ProfileError
 from fleetsift.profile import Descriptor, Scoring, Windowing, load_profile, parse_profile, profile_for
@@ -53,20 +53,8 @@ def write_rec(root: Path, name: str, df: pd.DataFrame | None = None, text: str |
 
 
 def profile_text(channels=CH, file="imu.csv", unit="s", more="") -> str:
-    return f"""
-[windowing]
-rate_hz = 50.0
-window_s = 4.0
-hop_s = 2.0
-max_gap_s = 0.25
-
-[streams.imu]
-kind = "table"
-file = "{file}"
-time_column = "t"
-time_unit = "{unit}"
-channels = {json.dumps(list(channels))}
-""" + more
+    """The shared profile (tests/inboxes.py) with its IMU stream only."""
+    return profile_toml(imu={"file": file, "time_unit": unit, "channels": list(channels)}, camera=False, more=more)
 
 
 def profile(**kw):

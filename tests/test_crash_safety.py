@@ -187,13 +187,9 @@ def copy_store(src: Path, dst: Path) -> Path:
 # --- fixtures --------------------------------------------------------------------------------------------------------
 
 @pytest.fixture(scope="module")
-def inbox(tmp_path_factory) -> Path:
-    from fleetsift.demo.fleet import make_fleet
-
-    d = tmp_path_factory.mktemp("crash") / "inbox"
-    names = make_fleet(d, n_recordings=N_REC, duration_s=20)
-    assert len(names) == N_REC
-    return d
+def inbox(demo_fleet, tmp_path_factory) -> Path:
+    """Three recordings of the session's demo fleet (tests/conftest.py)."""
+    return demo_fleet.copy(tmp_path_factory.mktemp("crash") / "inbox", demo_fleet.names[:N_REC])
 
 
 @pytest.fixture(scope="module")

@@ -1,4 +1,4 @@
-"""fleetsift.demo_fleet: determinism, IMU timing, camera clock offset, labels, and a planted bearing fault.
+"""fleetsift.demo.fleet: determinism, IMU timing, camera clock offset, labels, and a planted bearing fault.
 
 Plus checks on the committed sample_raw/ (every anomaly kind planted, enough normal recordings, small enough).
 """

@@ -9,6 +9,7 @@ from sklearn.metrics.pairwise import rbf_kernel
 
 from fleetsift.featurizers import descriptors as de
 from fleetsift.errors import InputError
+from fleetsift.vocabulary import DESCRIPTOR_KINDS
 
 
 def windows(seed, n_windows=6, n_samples=80, n_channels=5):
@@ -81,7 +82,7 @@ def _degenerate_windows():
     return {"wide": wide, "const": const, "dup": dup, "flat": flat}
 
 
-@pytest.mark.parametrize("kind", de.KINDS)
+@pytest.mark.parametrize("kind", DESCRIPTOR_KINDS)
 @pytest.mark.parametrize("case", ["wide", "const", "dup", "flat"])
 @pytest.mark.parametrize("include_mean", [False, True])
 def test_describe_is_strictly_positive_definite_on_rank_deficient_windows(kind, case, include_mean):

@@ -10,11 +10,12 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 import pytest
+from inboxes import table_inbox  # tests/ is on sys.path under pytest
 
 from fleetsift.scoring import baseline as scoring
 from fleetsift.scoring import fleet
-from fleetsift.scoring.evaluation import (hanley_mcneil_se, label_windows, outlier_baselines, read_labels, roc_auc,
-                                    roc_curve, tangent_vectors)
+from fleetsift.scoring.evaluation import (hanley_mcneil_se, label_windows, outlier_baselines, read_labels,
+                                          roc_auc, roc_curve, tangent_vectors)
 from fleetsift.errors import InputError
 from fleetsift.profile import Descriptor, Profile, Scoring, TableStream, Windowing
 
@@ -228,6 +229,32 @@ def test_score_point_detects_a_planted_burst_and_reports_errors(tmp_path):
     assert bad["auc"] is None and bad["error"]
 
 
+# ------------------------------------------------------------------------------------ preparing an inbox
+
+def test_evaluate_quarantines_a_too_short_recording_as_the_night_does(tmp_path):
+    # One preparation for both: `fleetsift evaluate` must score exactly the recordings a night scores, or its
+    # recomputed baseline would differ from the run's. A 3 s recording is shorter than one 4 s window.
+    from fleetsift.flows import evaluate, night
+    from fleetsift.tasks import stages
+
+    inbox = table_inbox(tmp_path / "inbox", {"long-a": 30.0, "long-b": 30.0, "short": 3.0})
+    steps = night.Steps(tables=stages.run_tables, embed=stages.run_embed, score=stages.run_score,
+                        write=stages.run_write)
+    saved = dict(os.environ)
+    try:
+        ran = night.run_night(steps, str(inbox), str(tmp_path / "store-run"), progress=False)
+        _, prepared, bad = evaluate.prepare(str(inbox), str(tmp_path / "store-eval"))
+    finally:  # evaluate.prepare points Prefect's settings at its store
+        os.environ.clear()
+        os.environ.update(saved)
+    run_bad = [{"recording_id": r["recording_id"], "reason": r["reason"]} for r in ran["recordings"]
+               if r["status"] == "quarantined"]
+    assert [b["recording_id"] for b in bad] == ["short"]
+    assert bad == run_bad
+    assert "windowing.window_s: expected a recording at least one window (4 s) long" in bad[0]["reason"]
+    assert sorted(p["tables"]["recording_id"] for p in prepared) == ["long-a", "long-b"]
+
+
 # -------------------------------------------------------------------------------------- slow: the CLI
 
 def fleetsift(*args, timeout=1500):
@@ -242,12 +269,9 @@ def fleetsift(*args, timeout=1500):
 
 
 @pytest.fixture(scope="module")
-def evaluated(tmp_path_factory):
-    from fleetsift.demo import fleet as demo_fleet
-
+def evaluated(demo_fleet, tmp_path_factory):
     base = tmp_path_factory.mktemp("evaluate")
-    inbox, store = base / "inbox", base / "store"
-    demo_fleet.make_fleet(inbox, n_recordings=3, duration_s=20.0, seed=3)
+    inbox, store = demo_fleet.copy(base / "inbox", demo_fleet.names[-3:]), base / "store"
     p = fleetsift("evaluate", "--inbox", str(inbox), "--labels", str(inbox / "labels.csv"), "--store", str(store),
                   "--plot", str(base / "roc.png"), "--json")
     return inbox, store, base, json.loads(p.stdout)

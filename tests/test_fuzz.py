@@ -17,6 +17,7 @@ import pytest
 from hypothesis import HealthCheck, example, given, settings
 from hypothesis import strategies as st
 
+from fleetsift.demo.fleet import PROFILE_TOML
 from fleetsift.errors import InputError, ProfileError
 from fleetsift.profile import parse_profile
 from fleetsift.featurizers.tables import clean_table, read_table_file
@@ -160,53 +161,8 @@ def test_arbitrary_bytes_as_parquet(data):
 
 # --- profile parser --------------------------------------------------------------------------------------------------
 
-VALID = """
-[windowing]
-rate_hz = 50.0
-window_s = 4.0
-hop_s = 2.0
-max_gap_s = 0.25
-
-[descriptor]
-kind = "ledoit_wolf"
-include_mean = true
-lags = 3
-ridge = 1e-6
-
-[scoring]
-metric = "riemann"
-method = "knn"
-k = 5
-knn_stat = "kth"
-exclusion_s = 30.0
-trim_fraction = 0.1
-threshold_c = 3.0
-top_channels = 3
-
-[baseline]
-recordings = []
-
-[streams.imu]
-kind = "table"
-file = "imu.csv"
-time_column = "t"
-time_unit = "s"
-channels = ["ax", "ay", "az", "gx", "gy", "gz"]
-clock_offset_s = 0.0
-[streams.imu.calibration]
-ax = { bias = 0.0, scale = 1.0 }
-
-[streams.camera]
-kind = "video"
-file = "camera.mp4"
-clock_offset_s = -0.35
-sample_hz = 5.0
-backbone = "efficientnet_lite0"
-weights = ""
-pca_dim = 4
-image_size = 224
-threads = 2
-"""
+# The demo fleet's own profile, every key spelled out: the base the mutations start from.
+VALID = PROFILE_TOML
 
 
 def _parse(text: str) -> None:

@@ -1,7 +1,7 @@
 """Log recordings through `fleetsift run`: a fleet of PX4 ULog files, and a fleet where one recording is a ROS 2 bag.
 
 The ULog files are written at test time with tests/ulog_spec.py (the published "ULog File Format" specification);
-the bag with rosbags' own writer (fleetsift.demo_bag.recording_to_bag). Every run is the CLI in a child process.
+the bag with rosbags' own writer (fleetsift.demo.bag.recording_to_bag). Every run is the CLI in a child process.
 """
 
 from __future__ import annotations
@@ -150,11 +150,12 @@ def test_ulog_channels_renamed_and_calibrated_through_the_table_stage(ulog_fleet
 # --------------------------------------------------------------------------------------------- bag in a CSV fleet
 
 @pytest.fixture(scope="module")
-def mixed_fleet(tmp_path_factory):
-    from fleetsift.demo import bag as demo_bag, fleet as demo_fleet
+def mixed_fleet(demo_fleet, tmp_path_factory):
+    from fleetsift.demo import bag as demo_bag
 
     base = tmp_path_factory.mktemp("mixed")
-    names = demo_fleet.make_fleet(base / "csv", n_recordings=4, duration_s=20.0, seed=11)
+    names = demo_fleet.names
+    demo_fleet.copy(base / "csv")
     demo_bag.demo_inbox_with_bag(base / "csv", base / "mixed", names[1])
     csv_out = run_json(base / "csv", base / "store-csv")
     mixed_out = run_json(base / "mixed", base / "store-mixed")

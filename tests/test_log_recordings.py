@@ -2,32 +2,20 @@
 
 import numpy as np
 import pytest
+from inboxes import profile_toml  # tests/ is on sys.path under pytest
 
 from fleetsift.profile import parse_profile, profile_for
 from fleetsift.tasks import stages
 
-CSV_PROFILE = """
-[windowing]
-rate_hz = 50.0
-[streams.imu]
-kind = "table"
-file = "imu.csv"
-channels = ["ax", "ay", "az", "gx", "gy", "gz"]
-[streams.camera]
-kind = "video"
-file = "camera.mp4"
-clock_offset_s = -0.35
-"""
 
 
 @pytest.mark.slow
 @pytest.mark.parametrize("storage", ["mcap", "sqlite3"])
-def test_bag_recording_matches_csv_and_video(tmp_path, storage):
-    from fleetsift.demo import bag as demo_bag, fleet as demo_fleet
+def test_bag_recording_matches_csv_and_video(demo_fleet, tmp_path, storage):
+    from fleetsift.demo import bag as demo_bag
 
-    fleet = tmp_path / "fleet"
-    (name,) = demo_fleet.make_fleet(fleet, n_recordings=1, duration_s=8.0, seed=3)
-    rec = fleet / name
+    name = demo_fleet.names[0]
+    rec = demo_fleet.copy(tmp_path / "fleet", [name]) / name
     bag_rec = tmp_path / "bags" / name
     bag_rec.mkdir(parents=True)
     demo_bag.recording_to_bag(rec, bag_rec / "bag", storage=storage, image_hz=5.0)
@@ -35,7 +23,7 @@ def test_bag_recording_matches_csv_and_video(tmp_path, storage):
     (bag_rec / "profile.toml").write_text(demo_bag.BAG_PROFILE)
     store = str(tmp_path / "store")
 
-    csv_p = parse_profile(CSV_PROFILE)
+    csv_p = parse_profile(profile_toml())
     bag_p = profile_for(bag_rec, csv_p)
     t_csv, t_bag = stages.run_tables(str(rec), csv_p, store), stages.run_tables(str(bag_rec), bag_p, store)
     assert t_csv["status"] == t_bag["status"] == "ok", (t_csv, t_bag)

@@ -1,8 +1,8 @@
 """Nightly operation: incremental runs, the Dask runner, serving on a cron schedule, history and time travel.
 
-One small generated fleet (4 recordings x 20 s) serves the whole module: the first three make the first night, the
-fourth is dropped into the inbox for the second. Every end-to-end test drives the `fleetsift` CLI in a child
-process, as an operator or a scheduler would.
+The session's demo fleet (4 recordings x 20 s, tests/conftest.py) serves the whole module: the first three make the
+first night, the fourth is dropped into the inbox for the second. Every end-to-end test drives the `fleetsift` CLI
+in a child process, as an operator or a scheduler would.
 """
 
 from __future__ import annotations
@@ -23,13 +23,13 @@ import numpy as np
 import pandas as pd
 import pytest
 from cli_run import cli_env, fleetsift, run_json  # tests/ is on sys.path under pytest
+from inboxes import table_inbox
 
 from fleetsift.errors import InputError
 
 ROOT = Path(__file__).resolve().parent.parent
 BIN = Path(sys.executable).parent
 N_FIRST = 3  # recordings of the first night; one more arrives for the second
-DURATION_S = 20
 
 
 def last_run_windows(store: Path) -> pd.DataFrame:
@@ -46,32 +46,21 @@ def last_run_windows(store: Path) -> pd.DataFrame:
 # --- fixtures -------------------------------------------------------------------------------------------------------
 
 @pytest.fixture(scope="module")
-def pool(tmp_path_factory) -> tuple[Path, list[str]]:
-    """The generated fleet (all recordings), never run on directly."""
-    from fleetsift.demo.fleet import make_fleet
-
-    out = tmp_path_factory.mktemp("fleet") / "pool"
-    names = make_fleet(out, n_recordings=N_FIRST + 1, duration_s=DURATION_S)
-    return out, names
-
-
-def _inbox_with(pool_dir: Path, names: list[str], dest: Path) -> Path:
-    dest.mkdir(parents=True, exist_ok=True)
-    shutil.copy2(pool_dir / "profile.toml", dest / "profile.toml")
-    for n in names:
-        shutil.copytree(pool_dir / n, dest / n)
-    return dest
+def pool(demo_fleet):
+    """The session's demo fleet (tests/conftest.py: 4 recordings x 20 s), never run on directly."""
+    assert len(demo_fleet.names) == N_FIRST + 1
+    return demo_fleet
 
 
 @pytest.fixture(scope="module")
 def two_nights(pool, tmp_path_factory):
     """Night 1 on three recordings, then a fourth arrives and night 2 runs: (inbox, store, json1, json2)."""
-    pool_dir, names = pool
+    names = pool.names
     base = tmp_path_factory.mktemp("local")
-    inbox = _inbox_with(pool_dir, names[:N_FIRST], base / "inbox")
+    inbox = pool.copy(base / "inbox", names[:N_FIRST])
     store = base / "store"
     first = run_json(inbox, store)
-    shutil.copytree(pool_dir / names[N_FIRST], inbox / names[N_FIRST])
+    shutil.copytree(pool.root / names[N_FIRST], inbox / names[N_FIRST])
     second = run_json(inbox, store)
     return inbox, store, first, second
 
@@ -82,7 +71,7 @@ def two_nights(pool, tmp_path_factory):
 @pytest.mark.timeout(1200)
 def test_new_recording_is_the_only_one_computed(two_nights, pool):
     inbox, store, first, second = two_nights
-    _, names = pool
+    names = pool.names
     assert first["stages"]["embed"] == {"computed": N_FIRST, "reused": 0}
     assert first["stages"]["tables"] == {"computed": N_FIRST, "reused": 0}
     # Night 2: only the new recording is decoded, embedded and resampled; the fleet step re-runs because the
@@ -205,8 +194,8 @@ def _stop(p: subprocess.Popen, sig: int, timeout: float) -> int | None:
 @pytest.mark.slow
 @pytest.mark.timeout(1500)
 def test_serve_schedules_and_a_triggered_run_lands_in_the_store(pool, tmp_path):
-    pool_dir, names = pool
-    inbox = _inbox_with(pool_dir, names[:N_FIRST], tmp_path / "inbox")
+    names = pool.names
+    inbox = pool.copy(tmp_path / "inbox", names[:N_FIRST])
     store = tmp_path / "store"  # the Prefect server keeps its state here too (store/prefect/server.db)
     port = _free_port()
     api = f"http://127.0.0.1:{port}/api"
@@ -338,17 +327,7 @@ def test_serve_without_a_server_explains_what_to_do(tmp_path):
 
 def _table_fleet(root: Path, n: int = 4) -> Path:
     """A video-free inbox of n IMU-like CSV recordings (30 s at 100 Hz), for in-process nights."""
-    rng = np.random.default_rng(5)
-    root.mkdir(parents=True)
-    (root / "profile.toml").write_text('[scoring]\nk = 2\nexclusion_s = 5.0\n[streams.imu]\nkind = "table"\n'
-                                       'file = "imu.csv"\nchannels = ["ax", "ay", "gz"]\n')
-    t = np.arange(0, 30, 0.01)
-    for i in range(n):
-        (root / f"rec-{i:02d}").mkdir()
-        x = rng.normal(0, 1, (len(t), 3)).cumsum(axis=0) * 0.05 + rng.normal(0, 0.2, (len(t), 3))
-        pd.DataFrame({"t": t, "ax": x[:, 0], "ay": x[:, 1], "gz": x[:, 2]}).to_csv(root / f"rec-{i:02d}" / "imu.csv",
-                                                                                 index=False)
-    return root
+    return table_inbox(root, {f"rec-{i:02d}": 30.0 for i in range(n)})
 
 
 def test_cached_only_night_writes_nothing_until_all_is_cached_and_follows_renames(tmp_path):

@@ -15,7 +15,8 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from fleetsift.flows.report import SAFETY_NOTE, flagged_spans, pick_top, write_report
+from fleetsift.flows.report import flagged_spans, pick_top, write_report
+from fleetsift.safety import SAFETY_NOTE
 
 ROOT = Path(__file__).resolve().parent.parent
 CHROMIUM = "/usr/bin/chromium"
@@ -186,6 +187,23 @@ def test_missing_video_keeps_the_traces(tmp_path):
     assert [i["src"][:14] for i in card["imgs"]] == ["data:image/png"]
 
 
+def test_one_safety_text_in_the_cli_json_help_report_and_readme(store_run):
+    # The safety note is defined once (fleetsift/safety.py): the run JSON, the CLI's help, the HTML report and
+    # the README say the same words.
+    from fleetsift.flows.cli import build_parser, summarise
+
+    st, run_id, w, out = store_run
+    summary = summarise({"run_id": run_id, "store": str(st.root), "store_version": 0, "recordings": [],
+                         "stages": {}, "elapsed_s": 0.0}, "riemann")
+    assert summary["note"] == SAFETY_NOTE
+    flat = lambda text: " ".join(text.split())  # noqa: E731 -- line wrapping aside
+    assert flat(SAFETY_NOTE) in flat(build_parser().format_help())
+    assert flat(SAFETY_NOTE) in flat(" ".join(parse(out).text))
+    readme = (Path(__file__).resolve().parent.parent / "README.md").read_text()
+    quoted = " ".join(line[2:] for line in readme.splitlines() if line.startswith("> "))
+    assert flat(SAFETY_NOTE) in flat(quoted.replace("**Safety note.**", ""))
+
+
 def test_report_matches_store(store_run):
     st, run_id, w, out = store_run
     doc = parse(out)
@@ -300,12 +318,10 @@ def test_report_errors(tmp_path):
 
 @pytest.mark.slow
 @pytest.mark.timeout(1500)
-def test_report_of_a_real_run(tmp_path):
-    from fleetsift.demo import fleet as demo_fleet
+def test_report_of_a_real_run(demo_fleet, tmp_path):
     from fleetsift.store import Store
 
-    inbox, store = tmp_path / "inbox", tmp_path / "store"
-    demo_fleet.make_fleet(inbox, n_recordings=3, duration_s=20.0, seed=5)
+    inbox, store = demo_fleet.copy(tmp_path / "inbox", demo_fleet.names[-3:]), tmp_path / "store"
     # A lower flagging threshold so this short fleet surely has windows to show (the report reads this profile).
     prof = inbox / "profile.toml"
     text = prof.read_text()

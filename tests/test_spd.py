@@ -11,6 +11,7 @@ from hypothesis import strategies as st
 from fleetsift.scoring import geometry
 from fleetsift.scoring import index as knn_index
 from fleetsift.scoring.index import KNNIndex, knn
+from fleetsift.vocabulary import SPD_METRICS
 from fleetsift.errors import InputError
 
 warnings.filterwarnings("ignore", category=DeprecationWarning, module="pyriemann")
@@ -134,7 +135,7 @@ def test_log_exp_maps():
 
 # ---------------------------------------------------------------------------------- pyriemann agreement
 
-@pytest.mark.parametrize("metric", geometry.METRICS)
+@pytest.mark.parametrize("metric", SPD_METRICS)
 def test_distances_match_pyriemann(metric):
     # pyriemann 0.12 (test-only reference implementation).
     rng = np.random.default_rng(7)
@@ -170,11 +171,36 @@ def test_means_match_pyriemann(metric, ref, kw):
                                f(X, sample_weight=w / w.sum(), **kw), atol=1e-9)
 
 
+@pytest.mark.parametrize("metric", ["logdet", "wasserstein"])
+def test_fixed_point_means_one_step_by_hand(metric):
+    # The Stein and Bures-Wasserstein means share one fixed-point loop: stopped after one step (with the warning
+    # that it did not converge) it must give one step of each published iteration from the weighted arithmetic
+    # mean, computed here with scipy.linalg (Chebbi & Moakher 2012; Alvarez-Esteban et al. 2016).
+    rng = np.random.default_rng(21)
+    X = random_spd(rng, 6, 4)
+    w = rng.uniform(0.5, 2.0, 6)
+    w = w / w.sum()
+    A = np.tensordot(w, X, axes=1)
+    if metric == "logdet":
+        want = sla.inv(sum(wi * sla.inv((A + Xi) / 2) for wi, Xi in zip(w, X)))
+    else:
+        A12 = sla.sqrtm(A).real
+        Am12 = sla.inv(A12)
+        S = sum(wi * sla.sqrtm(A12 @ Xi @ A12).real for wi, Xi in zip(w, X))
+        want = Am12 @ S @ S @ Am12
+    with pytest.warns(geometry.ConvergenceWarning, match=f"frechet_mean\\({metric}\\) did not converge in 1 "):
+        got = geometry.frechet_mean(X, metric, weights=w, max_iter=1)
+    np.testing.assert_allclose(got, want, rtol=1e-10, atol=1e-12)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", geometry.ConvergenceWarning)  # the default budget converges quietly
+        geometry.frechet_mean(X, metric, weights=w)
+
+
 def test_distance_broadcasts_leading_axes():
     rng = np.random.default_rng(9)
     A = random_spd(rng, 6, 3).reshape(2, 3, 3, 3)
     B = random_spd(rng, 3, 3)
-    for m in geometry.METRICS:
+    for m in SPD_METRICS:
         D = geometry.distance(A, B, m)
         assert D.shape == (2, 3)
         assert D[1, 2] == pytest.approx(float(geometry.distance(A[1, 2], B[2], m)), abs=1e-13)
@@ -249,7 +275,7 @@ def assert_same_knn(got, want):
     assert np.all(np.diff(np.where(np.isfinite(gd), gd, 1e300), axis=1) >= 0)
 
 
-@pytest.mark.parametrize("metric", geometry.METRICS)
+@pytest.mark.parametrize("metric", SPD_METRICS)
 @pytest.mark.parametrize("k", [1, 4, 12])
 def test_knn_equals_brute_force(metric, k):
     rng = np.random.default_rng(10 + k)

@@ -87,3 +87,35 @@ def test_maintain_compacts_and_keeps_time_travel_inside_retention(tmp_path):
     assert out["recordings"]["vacuumed"] == 0  # every file is younger than the retention
     assert [len(st.read("recordings", version=v)) for v in range(4)] == before == [2, 4, 6, 8]
     assert len(st.read("recordings")) == 8
+
+
+def test_maintain_sweeps_old_temporary_files_of_killed_writers(tmp_path, capsys):
+    import json
+    import os
+
+    from fleetsift.flows.cli import main
+
+    st = Store(tmp_path).init()
+    st.append("recordings", _rec_rows("run-a"))
+    old = time.time() - 2 * 3600  # older than a 1 h retention
+    real = st.cache_path("tables", "k1")
+    st.save_arrays(real, x=pd.Series([1.0]).to_numpy())
+    leftovers = [tmp_path / "cache" / "tables" / ".k2.npz.a1b2.tmp",  # Store._atomic_write_bytes
+                 tmp_path / "cache" / "score" / "k3.tmp",  # the score stage's staging Parquet
+                 tmp_path / "cache" / "score" / "k3.json.tmp",
+                 tmp_path / "baselines" / ".b-1.npz.x.tmp", tmp_path / ".catalog.json.y.tmp",
+                 tmp_path / "reports" / "run-a.html.tmp", tmp_path / "cache" / "report" / "b.html.tmp"]
+    for p in leftovers:
+        p.parent.mkdir(parents=True, exist_ok=True)
+        p.write_bytes(b"partial")
+        os.utime(p, (old, old))
+    fresh = tmp_path / "cache" / "embed" / ".k4.npz.c3.tmp"  # a writer may still be at it
+    fresh.write_bytes(b"partial")
+    os.utime(real, (old, old))  # an old real cache file is a cache file, not a leftover
+    inside_table = next((tmp_path / "recordings").glob("*.parquet"))
+    assert main(["maintain", "--store", str(tmp_path), "--retention-hours", "1", "--json"]) == 0
+    out = json.loads(capsys.readouterr().out)
+    assert out["temporary_files"] == {"removed": len(leftovers), "kept_recent": 1}
+    assert not any(p.exists() for p in leftovers)
+    assert fresh.exists() and real.exists() and inside_table.exists()
+    assert len(st.read("recordings")) == 2

@@ -7,8 +7,8 @@ from scipy import signal
 
 from fleetsift.errors import InputError
 from fleetsift.featurizers.recording import common_clock
-from fleetsift.featurizers.tables import (clean_table, cut_windows, gap_mask, place_on_clock, read_table_file, resample,
-                                uniform_clock, window_starts)
+from fleetsift.featurizers.tables import (clean_table, cut_windows, gap_mask, place_on_clock, read_table_file,
+                                          resample, uniform_clock, window_starts)
 
 
 def _table(t, x, unit="s", cal=None, offset=0.0, names=("a",)):
