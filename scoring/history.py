@@ -139,27 +139,32 @@ def assemble(banks: list[Bank], reviews: Reviews | None, *, max_references: int,
     """The references of a night from earlier nights' banks (newest first, one descriptor space).
 
     A window joins when its night admitted it and no engineer marked it a fault, or when an engineer marked it
-    normal. A window present in several banks (a recording scored again on a later night) counts once, as its
-    newest night saw it. Above ``max_references`` windows, an evenly spaced subset in (night, recording, time)
-    order is kept, so every night and recording stays represented in proportion.
+    normal. A window present in several banks (a recording scored again on a later night) counts once, as the
+    *first* night that scored it judged it: that judgement stands (a verdict can change it), so an unchanged inbox
+    gives the same references night after night and its scores are reused from the cache. Above
+    ``max_references`` windows, an evenly spaced subset in (night, recording, time) order is kept, so every night
+    and recording stays represented in proportion.
     """
     if not banks:
         raise InputError(_SRC, "banks", "at least one earlier night", "none")
     blocks = list(banks[0].descriptors)
     seen: set[tuple[str, int]] = set()
-    parts, approved = [], {b: [] for b in blocks}
-    approved_ids: set = set()
-    for bank in banks:
+    fresh_of = {}
+    for bank in reversed(banks):  # oldest first: the first night to score a window decides for it
         if list(bank.descriptors) != blocks:
             raise InputError(_SRC, "banks", f"descriptor blocks {blocks}", list(bank.descriptors))
         keys = list(zip(bank.content.tolist(), bank.window_index.tolist()))
-        fresh = np.array([k not in seen for k in keys], bool)
+        fresh_of[id(bank)] = np.array([k not in seen for k in keys], bool)
         seen.update(keys)
+    parts, approved = [], {b: [] for b in blocks}
+    approved_ids: set = set()
+    for bank in banks:
+        fresh = fresh_of[id(bank)]
         v = verdicts_for(bank.content, bank.t_mid, reviews, tolerance_s)
         take = fresh & ((bank.admitted & (v != "fault")) | (v == "normal"))
-        for b in blocks:
-            approved[b].append(bank.descriptors[b][fresh & (v == "normal")])
         ok = fresh & (v == "normal")
+        for b in blocks:
+            approved[b].append(bank.descriptors[b][ok])
         approved_ids.update(zip(bank.content[ok].tolist(), np.round(bank.t_mid[ok], 6).tolist()))
         order = np.lexsort((bank.t_mid[take], bank.content[take]))
         parts.append((bank, np.flatnonzero(take)[order]))

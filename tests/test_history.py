@@ -48,16 +48,18 @@ def _bank(run, content, n, admitted=None, d=3, seed=0):
 
 
 def test_assemble_counts_each_window_once_applies_verdicts_and_caps_evenly():
-    new = _bank("r2", ["x"] * 5 + ["y"] * 5, 10, admitted=np.array([True] * 9 + [False]), seed=1)
-    old = _bank("r1", ["x"] * 5 + ["z"] * 5, 10, seed=2)  # x is scored again on r2: r2's view of it counts
+    new = _bank("r2", ["x"] * 5 + ["y"] * 5, 10, admitted=np.array([False] + [True] * 8 + [False]), seed=1)
+    old = _bank("r1", ["x"] * 5 + ["z"] * 5, 10, seed=2)  # x is scored again on r2: r1's judgement of it stands
     rv = Reviews(content=np.array(["z", "y"]), t_mid=np.array([2.0, 4.0]), verdict=np.array(["fault", "normal"]))
     refs = assemble([new, old], rv, max_references=100, tolerance_s=0.4)
     keys = list(zip(refs.content.tolist(), refs.t_mid.tolist(), refs.run_id.tolist()))
-    assert ("x", 0.0, "r2") in keys and ("x", 0.0, "r1") not in keys
+    assert ("x", 0.0, "r1") in keys and ("x", 0.0, "r2") not in keys  # r2 held it back; r1 admitted it first
     assert ("y", 4.0, "r2") in keys  # not admitted by its night, but reviewed normal
     assert ("z", 2.0, "r1") not in keys and ("z", 1.0, "r1") in keys  # reviewed fault: never a reference
     assert len(refs) == 10 + 4 and refs.n_candidates == 14 and refs.runs == ["r1", "r2"]
     np.testing.assert_allclose(refs.approved["imu"], new.descriptors["imu"][[9]])
+    np.testing.assert_allclose(refs.descriptors["imu"][(refs.content == "x") & (refs.t_mid == 0.0)],
+                               old.descriptors["imu"][[0]])
     capped = assemble([new, old], rv, max_references=7, tolerance_s=0.4)
     assert len(capped) == 7 and set(capped.run_id) == {"r1", "r2"} and capped.n_candidates == 14
     with pytest.raises(InputError):

@@ -96,13 +96,17 @@ def test_warm_night_skips_the_orchestrator_and_rebuilds_recompute_on_purpose(two
                   "score": {"computed": 0, "reused": 1}}
 
     warm = run_json(inbox, store)
-    assert warm["stages"] == reused_all
-    assert warm["orchestrator"] == "none"  # nothing to compute: recorded without starting Prefect
+    # Nothing to read, decode or embed: recorded without starting Prefect. The fleet step re-scores once, because
+    # the recording that arrived on night 2 now joins the references (as night 2 judged it).
+    assert warm["stages"] == {**reused_all, "score": {"computed": 1, "reused": 0}}
+    assert warm["orchestrator"] == "none"
     assert warm["store_version"] == second["store_version"] + 1
     assert Path(warm["report"]).is_file()
-    a = last_run_windows(store)
+    # From then on the same inbox has the same references (the first night to score a window judged it): the
+    # scores come from the cache.
     always = run_json(inbox, store, "--orchestrate", "always")
     assert always["stages"] == reused_all and always["orchestrator"] == "prefect"
+    a = last_run_windows(store)
 
     imu = run_json(inbox, store, "--rebuild", "imu")
     assert imu["orchestrator"] == "prefect"
