@@ -123,6 +123,13 @@ def _check_choice(name: str, value: str, choices) -> str:
     return value
 
 
+def _check_settings(metric: str, stat: str, method: str, unit: str) -> None:
+    geometry._check_metric(metric)
+    _check_stat(stat)
+    _check_choice("method", method, METHODS)
+    _check_choice("unit", unit, UNITS)
+
+
 def _stat(dist: np.ndarray, k: int, stat: str, partial: bool = False) -> np.ndarray:
     """k-th (or mean of the k) smallest of each row; NaN where a row has fewer than k finite distances, or, with
     ``partial``, the last (mean of the) finite ones where it has at least one."""
@@ -327,10 +334,7 @@ def fit_references(references, rec_ids, times, k: int = Scoring.k, metric: str =
                    method: str = Scoring.method, unit: str = Scoring.knn_unit, approved=None) -> Baseline:
     """A baseline from references taken as normal as they stand (no trimming): a fleet's history, chosen
     recordings. Leave-one-out scores among the references give the robust scale and the threshold."""
-    geometry._check_metric(metric)
-    _check_stat(stat)
-    _check_choice("method", method, METHODS)
-    _check_choice("unit", unit, UNITS)
+    _check_settings(metric, stat, method, unit)
     R, rr, rt = _check_windows(references, rec_ids, times)
     k = int(k)
     if len(R) < 2:
@@ -364,10 +368,7 @@ def fit_baseline(descriptors, rec_ids, times, k: int = Scoring.k, metric: str = 
     3. The remaining windows are the references (at most ``max_refs``, evenly spaced in input order), fitted as
        :func:`fit_references`: their leave-one-out scores give ``threshold = median + c * 1.4826 * MAD``.
     """
-    geometry._check_metric(metric)
-    _check_stat(stat)
-    _check_choice("method", method, METHODS)
-    _check_choice("unit", unit, UNITS)
+    _check_settings(metric, stat, method, unit)
     D, rec, t = _check_windows(descriptors, rec_ids, times)
     n = len(D)
     k = int(k)
