@@ -172,15 +172,20 @@ def run_demo_history(work: Path) -> dict:
     store = work / "demo-store-history"
     if store.exists():
         shutil.rmtree(store)
-    if (work / "demo-cache").exists():
-        shutil.copytree(work / "demo-cache", store / "cache", dirs_exist_ok=True)
+    for cache in ("demo-cache", "demo-history-cache"):  # embeddings of earlier runs of this benchmark
+        if (work / cache).exists():
+            shutil.copytree(work / cache, store / "cache", dirs_exist_ok=True)
     out = {}
     for name, inbox in (("night 1 (seed 8)", n1), ("night 2 (sample_raw)", n2)):
         res = night.run_night(plain, inbox=str(inbox), store=str(store), progress=True)
         ev = evaluate_store(str(store), res["run_id"], str(inbox / "labels.csv"), baselines=True)
+        info = res["score"]["baseline"]
         out[name] = {**ev["auc"], "riemann_se": ev["auc_se"]["riemann"],
-                     "isolation_forest": ev["baselines"].get("isolation_forest"), "source": res["score"]["baseline"]["source"],
+                     "isolation_forest": ev["baselines"].get("isolation_forest"),
+                     "source": info["source"] + (" + tonight" if info["source"] == "history" and info["tonight"] else ""),
                      "n_windows": ev["n_windows"], "n_anomalous": ev["n_anomalous"]}
+    shutil.copytree(store / "cache", work / "demo-history-cache", ignore=shutil.ignore_patterns("score"),
+                    dirs_exist_ok=True)
     return out
 
 

@@ -27,6 +27,9 @@ from fleetsift.vocabulary import METRICS
 
 # Bump when what a bank's descriptors mean changes, so no later night compares with banks of the old meaning.
 SPACE_VERSION = 1
+# More than this share of tonight's windows flagged against the history alone: the history is not tonight's
+# operation (common practice: a fault concerns a minority of windows).
+UNLIKE_HISTORY_MAX = 0.5
 
 
 @dataclass
@@ -98,12 +101,16 @@ class BaselineInfo:
     space_fitted: bool  # the descriptor space was fitted tonight (first night or a profile change)
     ridges: dict[str, float]
     k: int
+    # share of tonight's windows over the threshold against the history alone (nan when tonight was a reference
+    # from the start)
+    unlike_history: float = float("nan")
 
     def to_dict(self) -> dict:
         return {"source": self.source, "n_references": self.n_references,
                 "n_reference_recordings": self.n_reference_recordings, "reference_runs": self.reference_runs,
                 "tonight": self.tonight, "n_approved": self.n_approved, "space_fitted": self.space_fitted,
-                "ridges": self.ridges, "k": self.k}
+                "ridges": self.ridges, "k": self.k,
+                "unlike_history": None if np.isnan(self.unlike_history) else self.unlike_history}
 
 
 @dataclass
@@ -392,40 +399,57 @@ def score_fleet(recs: list[RecordingFeatures], *, windowing, descriptor, scoring
     tonight = refs is None or refs.n_recordings < k
     if refs is not None and len(refs) < 2:
         refs = None
-    per_block: dict[str, dict[str, baseline.Baseline]] = {}
     tonight_ok = verdict == "normal"
     if refs is not None:  # a window approved on an earlier night and scored again tonight counts once
         tonight_ok &= np.array([(c_, t_) not in refs.approved_ids for c_, t_ in
                                 zip(w.content.tolist(), np.round(w.t_mid, 6).tolist())], bool)
-    for b in space.blocks:
-        approved = w.D[b][tonight_ok]
-        if refs is not None and len(refs.approved[b]):
-            approved = np.concatenate([refs.approved[b], approved])
-        per_block[b] = {}
-        for m in metrics:
-            kw = _fit_kwargs(scoring_cfg, m)
-            if tonight:
-                bl = baseline.fit_baseline(w.D[b][in_base], w.content[in_base], w.t_mid[in_base],
-                                           trim_fraction=scoring_cfg.trim_fraction,
-                                           max_refs=baseline_cfg.max_references, **kw)
-                if refs is not None:  # a thin history: tonight's robust references join it (once each)
-                    known = set(zip(refs.content.tolist(), np.round(refs.t_mid, 6).tolist()))
-                    new = np.array([(c_, t_) not in known for c_, t_ in
-                                    zip(bl.ref_rec_ids.tolist(), np.round(bl.ref_times, 6).tolist())], bool)
-                    bl = baseline.fit_references(np.concatenate([refs.descriptors[b], bl.references[new]]),
-                                                 np.concatenate([refs.content, bl.ref_rec_ids[new]]),
-                                                 np.concatenate([refs.t_mid, bl.ref_times[new]]), **kw)
-            else:
-                bl = baseline.fit_references(refs.descriptors[b], refs.content, refs.t_mid, **kw)
-            bl.approved = approved if len(approved) else None
-            per_block[b][m] = bl
 
-    z_by = {m: {b: baseline.zscore(baseline.raw_scores(w.D[b], w.content, w.t_mid, per_block[b][m]),
-                                   per_block[b][m]) for b in space.blocks} for m in metrics}
-    with warnings.catch_warnings():  # a window no block can score stays NaN
-        warnings.simplefilter("ignore", RuntimeWarning)
-        z = {m: np.nanmax(np.stack(list(z_by[m].values())), axis=0) for m in metrics}
+    def fit(with_tonight: bool) -> dict[str, dict[str, baseline.Baseline]]:
+        per_block: dict[str, dict[str, baseline.Baseline]] = {}
+        for b in space.blocks:
+            approved = w.D[b][tonight_ok]
+            if refs is not None and len(refs.approved[b]):
+                approved = np.concatenate([refs.approved[b], approved])
+            per_block[b] = {}
+            for m in metrics:
+                kw = _fit_kwargs(scoring_cfg, m)
+                if with_tonight:
+                    bl = baseline.fit_baseline(w.D[b][in_base], w.content[in_base], w.t_mid[in_base],
+                                               trim_fraction=scoring_cfg.trim_fraction,
+                                               max_refs=baseline_cfg.max_references, **kw)
+                    if refs is not None:  # a thin history, or one unlike tonight: tonight's references join
+                        known = set(zip(refs.content.tolist(), np.round(refs.t_mid, 6).tolist()))
+                        new = np.array([(c_, t_) not in known for c_, t_ in
+                                        zip(bl.ref_rec_ids.tolist(), np.round(bl.ref_times, 6).tolist())], bool)
+                        bl = baseline.fit_references(np.concatenate([refs.descriptors[b], bl.references[new]]),
+                                                     np.concatenate([refs.content, bl.ref_rec_ids[new]]),
+                                                     np.concatenate([refs.t_mid, bl.ref_times[new]]), **kw)
+                else:
+                    bl = baseline.fit_references(refs.descriptors[b], refs.content, refs.t_mid, **kw)
+                bl.approved = approved if len(approved) else None
+                per_block[b][m] = bl
+        return per_block
+
+    def scores(per_block):
+        z_by = {m: {b: baseline.zscore(baseline.raw_scores(w.D[b], w.content, w.t_mid, per_block[b][m]),
+                                       per_block[b][m]) for b in space.blocks} for m in metrics}
+        with warnings.catch_warnings():  # a window no block can score stays NaN
+            warnings.simplefilter("ignore", RuntimeWarning)
+            return z_by, {m: np.nanmax(np.stack(list(z_by[m].values())), axis=0) for m in metrics}
+
+    per_block = fit(tonight)
+    z_by, z = scores(per_block)
     c = float(scoring_cfg.threshold_c)
+    unlike_history = float("nan")
+    if not tonight:
+        # A fault is the exception in a night, not its rule: when most of tonight is unlike every earlier night,
+        # the history shows other operation (a new site, a new season), and tonight's own robust batch joins it.
+        zp = z[primary][np.isfinite(z[primary])]
+        unlike_history = float(np.mean(zp > c)) if len(zp) else 0.0
+        if unlike_history > UNLIKE_HISTORY_MAX:
+            tonight = True
+            per_block = fit(True)
+            z_by, z = scores(per_block)
     # An engineer's verdict on a window decides its flag: a reviewed false alarm is not flagged again.
     flagged = {m: np.where(verdict == "normal", False, np.where(verdict == "fault", True, z[m] > c)) for m in metrics}
     shares_b = {b: baseline.attribute(w.D[b], per_block[b][primary].mean, w.groups[b], len(ix))
@@ -449,7 +473,8 @@ def score_fleet(recs: list[RecordingFeatures], *, windowing, descriptor, scoring
                         n_references=len(any_bl.references), n_reference_recordings=len(set(any_bl.ref_rec_ids)),
                         reference_runs=refs.runs if refs is not None else [], tonight=tonight,
                         n_approved=0 if any_bl.approved is None else len(any_bl.approved),
-                        space_fitted=not use_history, ridges=dict(space.ridges), k=k)
+                        space_fitted=not use_history, ridges=dict(space.ridges), k=k,
+                        unlike_history=unlike_history)
     ref_ids = [] if refs is None else [f"{c_}:{t_:.6f}" for c_, t_ in zip(refs.content, refs.t_mid)]
     fb = FleetBaseline(baseline_id=_baseline_id(space, per_block, ref_ids), space=space, per_block=per_block,
                        info=info, reference_recordings=ref_recs)

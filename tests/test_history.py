@@ -130,6 +130,25 @@ def test_a_fault_recurring_tonight_is_scored_against_earlier_nights():
     assert _auc(_score(night2, parent_space=first.baseline.space, history=[first.bank]), labels) > 0.9
 
 
+def test_a_night_mostly_unlike_its_history_joins_the_references():
+    night1, _ = _recs(11, n_rec=6)
+    first = _score(night1)
+    h = [dataclasses.replace(first.bank, run_id="r1")]
+    # Tonight the fleet works elsewhere (three times the motion everywhere), and one recording rattles: against
+    # last week alone every window is unusual, so the history cannot tell the fault from the new operation.
+    night2, labels = _recs(12, n_rec=6, fault_in=(0,), night=2)
+    night2 = [dataclasses.replace(r, table_values=r.table_values * 3.0) for r in night2]
+    res = _score(night2, parent_space=first.baseline.space, history=h)
+    info = res.baseline.info
+    assert info.source == "history" and info.tonight and info.unlike_history > fleet.UNLIKE_HISTORY_MAX
+    assert info.n_reference_recordings == 12 and info.to_dict()["unlike_history"] == info.unlike_history
+    assert _auc(res, labels) > 0.9
+    # A night like its history keeps the history alone as references.
+    night3, _ = _recs(13, n_rec=6, night=3)
+    same = _score(night3, parent_space=first.baseline.space, history=h)
+    assert not same.baseline.info.tonight and same.baseline.info.unlike_history < 0.2
+
+
 def test_history_is_used_only_in_the_same_space_and_with_source_history():
     night1, _ = _recs(3)
     first = _score(night1)
