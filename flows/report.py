@@ -383,7 +383,12 @@ def _references_html(st: Store, run) -> str:
         extra.append(f"from {len(runs)} earlier run{'s' if len(runs) != 1 else ''} ({', '.join(_e(r) for r in runs[-3:])}"
                      + (", ..." if len(runs) > 3 else "") + ")")
     if info["source"] == "history" and info.get("tonight"):
-        extra.append("joined by this run's own windows while the history is thin")
+        from fleetsift.scoring.fleet import UNLIKE_HISTORY_MAX
+
+        unlike = info.get("unlike_history")
+        extra.append(f"joined by this run's own windows: {unlike:.0%} of them were unlike the history alone"
+                     if unlike is not None and unlike > UNLIKE_HISTORY_MAX
+                     else "joined by this run's own windows while the history is thin")
     if info.get("n_approved"):
         extra.append(f"{info['n_approved']} windows reviewed as normal")
     ridges = ", ".join(f"{_e(b)} {v:.3g}" for b, v in info.get("ridges", {}).items())

@@ -2,6 +2,7 @@
 nights (with every [baseline], [scoring] and [descriptor] option that shapes it checked for effect)."""
 
 import dataclasses
+import json
 
 import numpy as np
 import pandas as pd
@@ -259,3 +260,17 @@ def test_space_and_bank_round_trip_through_arrays():
     assert b.run_id == "r9" and list(b.descriptors) == ["imu"]
     np.testing.assert_array_equal(b.descriptors["imu"], res.bank.descriptors["imu"])
     pd.testing.assert_series_equal(pd.Series(b.content), pd.Series(res.bank.content.astype(str)))
+
+
+def test_the_report_says_why_tonight_joined_the_references(tmp_path):
+    from fleetsift.flows.report import _references_html
+    from fleetsift.store import Store
+
+    st = Store(str(tmp_path / "store")).init()
+    info = {"source": "history", "n_references": 40, "n_reference_recordings": 12, "reference_runs": ["r1"],
+            "tonight": True, "n_approved": 0, "ridges": {"imu": 0.1}, "k": 3}
+    for bid, unlike, says in (("b-1", 0.8, "80% of them were unlike the history alone"),
+                              ("b-2", None, "while the history is thin")):
+        (st.root / "baselines").mkdir(exist_ok=True)
+        np.savez(st.root / "baselines" / f"{bid}.npz", info=np.array(json.dumps({**info, "unlike_history": unlike})))
+        assert says in _references_html(st, {"baseline_id": bid})

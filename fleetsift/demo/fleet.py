@@ -995,7 +995,7 @@ clock_offset_s = -0.35    # the camera clock runs 0.35 s ahead of the IMU clock
 sample_hz = 5.0           # frames taken for embedding per second (by pts)
 backbone = "efficientnet_lite0"
 weights = ""
-pca_dim = 4
+pca_dim = 6                # principal components of the embeddings kept as channels (plus the PCA residual)
 image_size = 224
 threads = 2
 """
