@@ -176,8 +176,8 @@ def iter_frames(path: str | Path, sample_hz: float | None = None, size: tuple[in
     threads: decoder threads (None leaves FFmpeg's default, 0 = automatic).
     stats: if a dict is given it is filled with n_decoded, n_yielded, n_expected (header frame count or None),
     n_lost (None when not detectable), truncated (bool), n_damaged (damaged spans decoding resumed after or ended
-    in), n_skipped_packets and gaps (list of (t_before, t_after) seconds around each damaged span; t_before is
-    None when the damage came before any good frame).
+    in), n_skipped_packets and gaps (list of (first, last) presentation times in seconds of the frames dropped in
+    each damaged span).
 
     Frames stream one at a time: memory does not grow with the video's length. Damage mid-file skips to the
     next keyframe (see _decode); a truncated or damaged tail is logged and ends the iteration after the frames
@@ -242,16 +242,14 @@ def _decode(container, stream, path: Path, st: dict) -> Iterator[av.VideoFrame]:
 
     Damage inside the file (a corrupt packet, or one the decoder rejects) drops packets up to the next keyframe,
     where decoding resumes: the frames in between cannot be decoded correctly without their reference frames.
-    Each such span is counted and recorded in ``st["gaps"]`` as (time of the last good frame, time of the first
-    frame after it), a gap in the frame times that the common clock judges by its tolerance like any other. A
+    Each such span is counted and recorded in ``st["gaps"]`` as (first, last) presentation time of the dropped
+    packets, in seconds: a gap in the frame times that the common clock judges by its tolerance like any other. A
     read error, or damage that no keyframe follows, ends the stream after flushing the frames the decoder holds.
     """
     tb = stream.time_base
     packets = container.demux(stream)
     resync = False  # inside a damaged span: packets are dropped until the next keyframe
-    last_t: float | None = None
-    gap_from: float | None = None
-    gap_open = False
+    span: list[float] = []  # pts seconds of the packets dropped in the current damaged span
     flushing = False
     while True:
         try:
@@ -266,8 +264,11 @@ def _decode(container, stream, path: Path, st: dict) -> Iterator[av.VideoFrame]:
             packet, flushing = None, True
         if packet is not None:
             damaged = packet.is_corrupt
+            pts = packet.pts if packet.pts is not None else packet.dts
             if resync and not packet.is_keyframe:
                 st["n_skipped_packets"] += 1
+                if pts is not None:
+                    span.append(float(pts * tb))
                 continue
             if not damaged:
                 try:
@@ -278,27 +279,27 @@ def _decode(container, stream, path: Path, st: dict) -> Iterator[av.VideoFrame]:
             if damaged:
                 if not resync:
                     st["n_damaged"] += 1
-                    gap_from, gap_open = last_t, True
                     log.warning("%s: damaged packet at pts %s; resuming at the next keyframe", path, packet.pts)
                 resync = True
                 st["n_skipped_packets"] += 1
+                if pts is not None:
+                    span.append(float(pts * tb))
                 continue
-            resync = False
+            if resync and span:
+                st["gaps"].append((min(span), max(span)))
+                log.warning("%s: %d packets skipped over %.3f-%.3f s", path, len(span), min(span), max(span))
+            resync, span = False, []
         else:
             if resync:
                 st["truncated"] = True  # the damage ran to the end: nothing after it decoded
+                if span:
+                    st["gaps"].append((min(span), max(span)))
             try:
                 frames = stream.decode(None)  # flush what the decoder holds
             except av.FFmpegError:
                 return
         for frame in frames:
             st["n_decoded"] += 1
-            if frame.pts is not None:
-                t = float(frame.pts * tb)
-                if gap_open:
-                    st["gaps"].append((gap_from, t))
-                    gap_open = False
-                last_t = t
             yield frame
         if flushing:
             return
