@@ -58,10 +58,10 @@ class VideoStream:
     image_size: int = 224
     threads: int = 2
     batch_size: int = 8
-    # Frames that differ from the last embedded one by less than this (mean absolute difference of a 32 x 32 grey
+    # Frames that differ from the last embedded one by less than this (largest pixel difference of a 32 x 32 grey
     # thumbnail, in 0..1 grey levels) reuse its embedding; 0 embeds every sampled frame. Chosen by measurement
-    # (README, Performance).
-    skip_threshold: float = 0.01
+    # (bench/embed.py; README, Performance).
+    skip_threshold: float = 0.008
     runtime: str = "onnxruntime"  # RUNTIMES: who runs the backbone
     precision: str = "float32"  # PRECISIONS
     topic: str = ""  # for image topics in a ROS 2 bag
@@ -396,6 +396,9 @@ def _parse_video(c: _Checker, name: str, st: dict, where: str) -> VideoStream:
     allowed = {f for f in VideoStream.__dataclass_fields__} - {"name"}
     c.no_unknown(st, allowed, where)
     weights = c.string(st, "weights", where, "")
+    if st.get("precision") == "int8" and st.get("runtime", VideoStream.runtime) != "onnxruntime":
+        c.fail(f"{where}.precision", 'precision = "int8" with runtime = "onnxruntime" (the int8 path is an ONNX '
+               'Runtime graph)', f'runtime = {st.get("runtime")!r}')
     return VideoStream(
         name=name,
         file=c.relative_file(st, "file", where),
