@@ -130,7 +130,9 @@ def _backbone(stream: VideoStream, store: Store, calibration=None):
     serialised inside, so concurrent recordings never run more than `threads` model threads)."""
     from fleetsift.featurizers import embed
 
-    key = (stream.backbone, stream.weights, stream.image_size, stream.threads, stream.runtime, stream.precision)
+    key = (stream.backbone, stream.weights, stream.image_size, stream.threads, stream.runtime, stream.precision,
+           str(store.root) if stream.runtime == "onnxruntime" else "",  # the graph is cached in the store
+           "" if calibration is None else hashlib.sha256(np.ascontiguousarray(calibration).tobytes()).hexdigest())
     with _BACKBONES_LOCK:
         if key not in _BACKBONES:
             bb = embed.load_backbone(stream.backbone, weights=stream.weights or None, threads=stream.threads,

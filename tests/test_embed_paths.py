@@ -196,3 +196,81 @@ def test_profile_keys_of_the_faster_paths_are_validated():
         with pytest.raises(Exception) as err:
             parse_profile(base + bad + "\n")
         assert f"streams.camera.{key}" in str(err.value)
+
+
+# --------------------------------------------------------------------------------- the profile keys reach the stage
+
+@pytest.fixture(scope="module")
+def camera_recording(tmp_path_factory):
+    """A recording whose camera stands still for 3 s, then pans (64 x 48, 15 fps, 6 s)."""
+    from fleetsift.demo.video import write_video
+
+    rec = tmp_path_factory.mktemp("inbox") / "rover-a"
+    rec.mkdir()
+    yy, xx = np.mgrid[0:48, 0:64]
+
+    def frames():
+        for i in range(90):
+            k = max(0, i - 45)
+            img = np.empty((48, 64, 3), np.uint8)
+            img[..., 0] = (xx * 4 + 6 * k) % 256
+            img[..., 1] = yy * 5
+            img[..., 2] = ((xx + yy) * 3 + 9 * k) % 256
+            yield img
+    write_video(rec / "camera.mp4", frames(), fps=15, options={"crf": "10"})
+    return rec
+
+
+def _run(rec, tmp_path, **camera):
+    from inboxes import profile_toml
+    from fleetsift.store import Store
+    from fleetsift.tasks import stages
+
+    prof = parse_profile(profile_toml(camera={"sample_hz": 5.0, "image_size": 64, "threads": 1, **camera}))
+    out = stages.run_embed(str(rec), prof, str(tmp_path / "store"), progress=False)
+    assert out["status"] == "ok", out
+    arr = Store.load_arrays(out["paths"]["camera"])
+    import json
+    return out, arr, json.loads(str(arr["meta"]))
+
+
+def test_skip_threshold_reaches_the_embed_stage(camera_recording, tmp_path):
+    out0, a0, m0 = _run(camera_recording, tmp_path, skip_threshold=0.0)
+    out1, a1, m1 = _run(camera_recording, tmp_path, skip_threshold=0.008)
+    assert out0["paths"] != out1["paths"]  # part of the stage key
+    assert m0["frames_skipped"] == 0 and out0["frames_skipped"] == 0
+    # Standing still up to t = 3.0 s: 16 frames at 5 Hz, all but the first skipped; the pan is embedded.
+    assert out1["frames_skipped"] == m1["frames_skipped"] == 15 and m1["frames"] == m0["frames"] == 30
+    np.testing.assert_array_equal(a0["t"], a1["t"])
+    assert len(a1["emb"]) == 30 and (a1["emb"][1:16] == a1["emb"][0]).all()
+    assert (E._cosine(a1["emb"], a0["emb"]) >= MIN_COSINE).all()
+
+
+def test_runtime_reaches_the_embed_stage(camera_recording, tmp_path):
+    out_t, a_t, m_t = _run(camera_recording, tmp_path, runtime="torch", skip_threshold=0.0)
+    out_o, a_o, m_o = _run(camera_recording, tmp_path, runtime="onnxruntime", skip_threshold=0.0)
+    assert out_t["paths"] != out_o["paths"]
+    assert (m_t["runtime"], m_o["runtime"]) == ("torch", "onnxruntime")
+    assert list((tmp_path / "store" / "cache" / "onnx").glob("*-float32.onnx"))  # the cached graph
+    assert np.abs(a_o["emb"] - a_t["emb"]).max() <= 1e-4
+    assert not np.array_equal(a_o["emb"], a_t["emb"])  # really computed by the other runtime
+
+
+def test_precision_reaches_the_embed_stage(camera_recording, tmp_path, monkeypatch):
+    _, a32, m32 = _run(camera_recording, tmp_path, skip_threshold=0.0)
+    monkeypatch.setattr(E, "INT8_MIN_COSINE", -1.0)  # let the int8 graph through whatever its accuracy here
+    out8, a8, m8 = _run(camera_recording, tmp_path, skip_threshold=0.0, precision="int8")
+    assert (m32["precision"], m8["precision"]) == ("float32", "int8")
+    assert np.abs(a8["emb"] - a32["emb"]).max() > 1e-4  # int8 arithmetic, not the float32 graph
+    assert list((tmp_path / "store" / "cache" / "onnx").glob("*-int8-*.onnx"))
+
+
+def test_int8_refused_by_the_guard_quarantines_with_the_reason(camera_recording, tmp_path, monkeypatch):
+    from inboxes import profile_toml
+    from fleetsift.tasks import stages
+
+    monkeypatch.setattr(E, "INT8_MIN_COSINE", 1.01)
+    prof = parse_profile(profile_toml(camera={"image_size": 64, "threads": 1, "precision": "int8"}))
+    out = stages.run_embed(str(camera_recording), prof, str(tmp_path / "store"), progress=False)
+    assert out["status"] == "quarantined"
+    assert "precision: expected int8 embeddings within cosine" in out["reason"]
