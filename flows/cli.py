@@ -58,6 +58,8 @@ def summarise(result: dict, metric: str) -> dict:
         "quarantined": [{"recording_id": r["recording_id"], "reason": r["reason"]}
                         for r in result["recordings"] if r["status"] == "quarantined"],
         "stages": result["stages"],
+        # Of tonight's computed embeddings: frames sampled, those skipped as unchanged, damaged spans skipped.
+        "embed_frames": result.get("embed_frames", {"frames": 0, "frames_skipped": 0, "damaged_spans": 0}),
         "orchestrator": result.get("orchestrator", "prefect"),
         "elapsed_s": result["elapsed_s"],
         "report": result.get("report"),
@@ -79,6 +81,12 @@ def print_table(summary: dict, out=sys.stdout) -> None:
     st = summary["stages"]
     print("stages: " + ", ".join(f"{k} {v['computed']} computed / {v['reused']} reused" for k, v in st.items()),
           file=out)
+    emb = summary.get("embed_frames", {})
+    if emb.get("frames"):
+        print(f"embed: {emb['frames']} frames, {emb['frames_skipped']} skipped as unchanged "
+              f"({emb['frames_skipped'] / emb['frames']:.1%})"
+              + (f", {emb['damaged_spans']} damaged spans skipped to the next keyframe" if emb.get("damaged_spans")
+                 else ""), file=out)
     if summary.get("report"):
         print(f"report: {summary['report']}", file=out)
     print(SAFETY_NOTE, file=out)
