@@ -78,6 +78,62 @@ def skip_sweep(bb) -> None:
         print(f"{thr:>9g} {n / total:>8.1%} {low:>10.4f} {'ok' if low >= E.INT8_MIN_COSINE else 'FAIL':>6}")
 
 
+def demo_accuracy(work: Path) -> None:
+    """The guard at fleet level: the bundled demo night scored with plain float32 torch embedding every sampled
+    frame, and with the default profile (ONNX Runtime float32, frames skipped): ROC AUC per metric, and the
+    scores of windows inside the planted visual anomalies (pallet, person), both in one run."""
+    import shutil
+
+    import pandas as pd
+
+    from fleetsift.flows import night
+    from fleetsift.flows.evaluate import evaluate_store
+    from fleetsift.store import Store
+    from fleetsift.tasks import stages
+
+    plain = night.Steps(tables=stages.run_tables, embed=stages.run_embed, score=stages.run_score,
+                        write=stages.run_write)
+    inbox = work / "demo-inbox"
+    shutil.copytree(ROOT / "sample_raw", inbox, ignore=shutil.ignore_patterns("*.py", "README.md"))
+    labels = pd.read_csv(inbox / "labels.csv")
+    visual = labels[labels["kind"].isin(["pallet", "person"])]
+    text = (inbox / "profile.toml").read_text()
+    variants = {"torch float32, every frame": text.replace('runtime = "onnxruntime"', 'runtime = "torch"')
+                .replace("skip_threshold = 0.008", "skip_threshold = 0.0"),
+                "default (onnxruntime float32, skip)": text}
+    assert variants["torch float32, every frame"] != text, "sample_raw/profile.toml no longer names the keys"
+    res = {}
+    for name, prof_text in variants.items():
+        prof = work / f"{len(res)}.toml"
+        prof.write_text(prof_text)
+        store = work / f"store-{len(res)}"
+        t0 = time.perf_counter()
+        out = night.run_night(plain, inbox=str(inbox), store=str(store), profile_path=str(prof), progress=False)
+        ev = evaluate_store(str(store), out["run_id"], str(inbox / "labels.csv"), baselines=False)
+        w = Store(store).read("windows")
+        w = w[w["metric"] == "riemann"]
+        mid = (w["t_start_s"] + w["t_end_s"]) / 2
+        inside = np.zeros(len(w), bool)
+        for r in visual.itertuples():
+            inside |= ((w["recording_id"] == r.recording).to_numpy() & (mid >= r.start_s).to_numpy()
+                       & (mid <= r.end_s).to_numpy())
+        res[name] = {"auc": ev["auc"], "visual": w[inside].set_index(["recording_id", "window_index"])["score"],
+                     "seconds": time.perf_counter() - t0, "frames": out["embed_frames"]}
+    (ref_name, ref), (new_name, new) = res.items()
+    print("\ndemo fleet (sample_raw, one night), accuracy of the default embedding path against plain float32")
+    for name, r in res.items():
+        fr = r["frames"]
+        print(f"  {name:<38} AUC riemann {r['auc']['riemann']:.4f} logeuclid {r['auc']['logeuclid']:.4f} "
+              f"euclid {r['auc']['euclid']:.4f}; {fr['frames_skipped']} of {fr['frames']} frames skipped; "
+              f"{r['seconds']:.0f} s")
+    for m in ("riemann", "logeuclid", "euclid"):
+        print(f"  AUC difference {m}: {new['auc'][m] - ref['auc'][m]:+.4f} (guard: within 0.005 / 0.01)")
+    a, b = ref["visual"].align(new["visual"], join="inner")
+    rel = np.abs(b - a) / np.abs(a).clip(lower=1e-9)
+    print(f"  windows inside planted visual anomalies ({len(a)}): score change median {np.median(rel):.2%}, "
+          f"largest {rel.max():.2%} (guard: 2 %)")
+
+
 def runtimes(rounds: int, min_seconds: float) -> None:
     import skimage.data
 
@@ -135,8 +191,12 @@ def main() -> None:
     ap.add_argument("--rounds", type=int, default=3)
     ap.add_argument("--min-seconds", type=float, default=1.0)
     ap.add_argument("--skip-only", action="store_true", help="only the frame-skipping table")
+    ap.add_argument("--demo", action="store_true", help="only the demo-fleet accuracy (two nights in-process)")
     args = ap.parse_args()
     print(f"load average at start: {' '.join(f'{x:.2f}' for x in os.getloadavg())} on {os.cpu_count()} cores")
+    if args.demo:
+        demo_accuracy(Path(tempfile.mkdtemp(prefix="fleetsift-bench-demo-")))
+        return
     if args.skip_only:
         bb = load_backbone(threads=2)
         bb.use_onnxruntime(Path(tempfile.mkdtemp(prefix="fleetsift-bench-onnx-")), weights.backbone_fingerprint())
