@@ -365,12 +365,16 @@ def _ort_session(path: Path, threads: int):
     so.inter_op_num_threads = 1
     so.execution_mode = ort.ExecutionMode.ORT_SEQUENTIAL
     so.graph_optimization_level = ort.GraphOptimizationLevel.ORT_ENABLE_ALL
+    so.log_severity_level = 3  # errors only: the optimiser's notes on unused constants are not for the user
     return ort.InferenceSession(str(path), sess_options=so, providers=["CPUExecutionProvider"])
 
 
 def _quantize_int8(graph: Path, out: Path, calib: np.ndarray) -> None:
     """Static int8 quantisation (QDQ, per-channel weights, MinMax calibration) with ONNX Runtime's tools."""
+    import onnxruntime as ort
     from onnxruntime.quantization import CalibrationDataReader, QuantFormat, QuantType, quantize_static
+
+    ort.set_default_logger_severity(3)  # the calibration sessions' notes on unused constants
 
     class Reader(CalibrationDataReader):
         def __init__(self):

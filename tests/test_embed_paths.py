@@ -274,3 +274,56 @@ def test_int8_refused_by_the_guard_quarantines_with_the_reason(camera_recording,
     out = stages.run_embed(str(camera_recording), prof, str(tmp_path / "store"), progress=False)
     assert out["status"] == "quarantined"
     assert "precision: expected int8 embeddings within cosine" in out["reason"]
+
+
+# --------------------------------------------------------------------------------- slow: the guard on a demo night
+
+@pytest.mark.slow
+@pytest.mark.timeout(1200)
+def test_demo_night_auc_and_visual_scores_match_plain_float32(tmp_path):
+    """Five bundled demo recordings (those with the planted pallet and person, and a plain one) scored twice in
+    one store layout: plain float32 torch embedding every frame, and the default path (ONNX Runtime float32,
+    frames skipped). ROC AUC within 0.01 (issue 13's guard) and the visual anomalies' window scores within 2 %."""
+    import shutil
+
+    import pandas as pd
+
+    from fleetsift.flows import night
+    from fleetsift.flows.evaluate import evaluate_store
+    from fleetsift.store import Store
+    from fleetsift.tasks import stages
+
+    names = ["rover-01-zone-s", "rover-02-zone-z", "rover-03-zone-t", "rover-04-zone-n", "rover-06-zone-m"]
+    inbox = tmp_path / "inbox"
+    for n in names:
+        shutil.copytree(ROOT / "sample_raw" / n, inbox / n)
+    labels = pd.read_csv(ROOT / "sample_raw" / "labels.csv")
+    labels = labels[labels["recording"].isin(names)]
+    labels.to_csv(inbox / "labels.csv", index=False)
+    text = (ROOT / "sample_raw" / "profile.toml").read_text()
+    plain_text = text.replace('runtime = "onnxruntime"', 'runtime = "torch"').replace(
+        "skip_threshold = 0.008", "skip_threshold = 0.0")
+    assert plain_text != text
+    steps = night.Steps(tables=stages.run_tables, embed=stages.run_embed, score=stages.run_score,
+                        write=stages.run_write)
+    res = {}
+    for name, prof_text in (("plain", plain_text), ("default", text)):
+        prof = tmp_path / f"{name}.toml"
+        prof.write_text(prof_text)
+        store = tmp_path / f"store-{name}"
+        out = night.run_night(steps, inbox=str(inbox), store=str(store), profile_path=str(prof), progress=False)
+        ev = evaluate_store(str(store), out["run_id"], str(inbox / "labels.csv"), baselines=False)
+        w = Store(store).read("windows")
+        w = w[w["metric"] == "riemann"].set_index(["recording_id", "window_index"])
+        res[name] = (ev["auc"], w, out["embed_frames"])
+    assert res["plain"][2]["frames_skipped"] == 0 and res["default"][2]["frames_skipped"] > 0
+    for m in ("riemann", "logeuclid", "euclid"):
+        assert abs(res["default"][0][m] - res["plain"][0][m]) <= 0.01, (m, res["default"][0], res["plain"][0])
+    wp, wd = res["plain"][1], res["default"][1]
+    mid = (wp["t_start_s"] + wp["t_end_s"]) / 2
+    visual = np.zeros(len(wp), bool)
+    for r in labels[labels["kind"].isin(["pallet", "person"])].itertuples():
+        visual |= (wp.index.get_level_values(0) == r.recording) & (mid >= r.start_s).to_numpy() \
+            & (mid <= r.end_s).to_numpy()
+    a, b = wp["score"][visual], wd["score"].reindex(wp.index[visual])
+    assert len(a) > 10 and (np.abs(b - a) <= 0.02 * np.abs(a)).all(), pd.DataFrame({"plain": a, "default": b})
