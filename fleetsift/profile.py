@@ -61,7 +61,7 @@ class VideoStream:
     # Frames that differ from the last embedded one by less than this (largest pixel difference of a 32 x 32 grey
     # thumbnail, in 0..1 grey levels) reuse its embedding; 0 embeds every sampled frame. Chosen by measurement
     # (bench/embed.py; README, Performance).
-    skip_threshold: float = 0.008
+    skip_threshold: float = 0.006
     runtime: str = "onnxruntime"  # RUNTIMES: who runs the backbone
     precision: str = "float32"  # PRECISIONS
     topic: str = ""  # for image topics in a ROS 2 bag

@@ -302,7 +302,7 @@ def test_demo_night_auc_and_visual_scores_match_plain_float32(tmp_path):
     labels.to_csv(inbox / "labels.csv", index=False)
     text = (ROOT / "sample_raw" / "profile.toml").read_text()
     plain_text = text.replace('runtime = "onnxruntime"', 'runtime = "torch"').replace(
-        "skip_threshold = 0.008", "skip_threshold = 0.0")
+        "skip_threshold = 0.006", "skip_threshold = 0.0")
     assert plain_text != text
     steps = night.Steps(tables=stages.run_tables, embed=stages.run_embed, score=stages.run_score,
                         write=stages.run_write)

@@ -998,7 +998,7 @@ weights = ""
 pca_dim = 4
 image_size = 224
 threads = 2
-skip_threshold = 0.008    # a frame this close to the last embedded one (largest thumbnail pixel change) reuses it
+skip_threshold = 0.006    # a frame this close to the last embedded one (largest thumbnail pixel change) reuses it
 runtime = "onnxruntime"   # or "torch"; the ONNX export is cached in the store by weights fingerprint
 precision = "float32"     # "int8" only where it passes the accuracy guard (README, Performance)
 """
