@@ -88,30 +88,53 @@ def change_imu_bias(profile: Path, channel: str = "ax", bias: float = 0.05) -> N
     profile.write_text(new)
 
 
-def floor(inbox: Path, names: list[str]) -> dict:
-    """Decode + embed the sampled frames of every recording's video streams, nothing else."""
+def floor(inbox: Path, names: list[str], store: Path) -> dict:
+    """Decode + embed the sampled frames of every recording's video streams, nothing else, the way the embed
+    stage does it (tasks/stages.py: its backbone with the profile's runtime and precision, decoding in a thread
+    ahead of the model, frames skipped by skip_threshold), into memory."""
     from fleetsift.profile import load_profile
-    from fleetsift.featurizers import embed, video
+    from fleetsift.featurizers import embed
+    from fleetsift.store import Store
+    from fleetsift.tasks import stages as st
 
     prof = load_profile(inbox / "profile.toml")
     streams = prof.video_streams()
     t0 = time.perf_counter()
-    backbones = {}
-    for s in streams:
-        key = (s.backbone, s.weights, s.image_size, s.threads)
-        if key not in backbones:
-            backbones[key] = embed.load_backbone(s.backbone, weights=s.weights or None, threads=s.threads,
-                                                 image_size=s.image_size)
+    backbones = {s.name: st._backbone(s, Store(store)) for s in streams}
     load_s = time.perf_counter() - t0
-    n_frames = 0
+    n_frames = n_skipped = 0
     t0 = time.perf_counter()
     for name in names:
         for s in streams:
-            bb = backbones[(s.backbone, s.weights, s.image_size, s.threads)]
-            t, _ = embed.embed_frames(video.iter_frames(inbox / name / s.file, s.sample_hz), bb,
-                                      batch_size=s.batch_size)
-            n_frames += len(t)
-    return {"seconds": time.perf_counter() - t0, "load_s": load_s, "frames": n_frames}
+            stats: dict = {}
+            embed.embed_frames(st._frames(inbox / name / s.file, s), backbones[s.name], batch_size=s.batch_size,
+                               skip_threshold=s.skip_threshold, max_gap_s=st.skip_gap_s(s), stats=stats,
+                               decode_ahead=2 * s.batch_size)
+            n_frames += stats["n_frames"]
+            n_skipped += stats["n_skipped"]
+    return {"seconds": time.perf_counter() - t0, "load_s": load_s, "frames": n_frames, "skipped": n_skipped}
+
+
+def runtime_rates(min_seconds: float = 1.0, rounds: int = 2) -> dict:
+    """Images/s of the backbone per runtime (224 px, batch 32, 2 threads), interleaved (bench/embed.py's rate)."""
+    import statistics
+
+    import numpy as np
+
+    sys.path.insert(0, str(ROOT / "bench"))
+    from embed import rate
+
+    from fleetsift.featurizers import embed, weights
+
+    torch_bb = embed.load_backbone(threads=2)
+    ort_bb = embed.load_backbone(threads=2)
+    ort_bb.use_onnxruntime(Path(tempfile.mkdtemp(prefix="fleetsift-bench-onnx-")), weights.backbone_fingerprint())
+    frames = np.random.default_rng(0).integers(0, 256, size=(32, 224, 224, 3), dtype=np.uint8)
+    res = {"torch float32": [], "onnxruntime float32": []}
+    for _ in range(rounds):
+        res["torch float32"].append(rate(torch_bb, frames, 2, min_seconds))
+        res["onnxruntime float32"].append(rate(ort_bb, frames, 2, min_seconds))
+    return {k: statistics.median(v) for k, v in res.items()}
 
 
 def stages(out: dict) -> str:
@@ -154,7 +177,8 @@ def main() -> None:
         finally:
             os.killpg(server.pid, signal.SIGTERM)
             server.wait(timeout=60)
-        fl = floor(inbox, names)
+        fl = floor(inbox, names, work / "floor-store")
+        rates = runtime_rates()
         print(f"load average at end:   {' '.join(f'{x:.2f}' for x in os.getloadavg())}")
 
         recorded = sum(r.get("duration_s") or 0.0 for r in res["cold"][0]["recordings"])
@@ -163,7 +187,14 @@ def main() -> None:
             out, wall = res[k]
             print(f"{k:<6} {wall:>8.1f} {out['elapsed_s']:>8.1f}  {stages(out)}")
         print(f"{'floor':<6} {fl['seconds']:>8.1f} {'':>8}  decode + embed of {fl['frames']} sampled frames "
-              f"(backbone load {fl['load_s']:.1f} s, not included)")
+              f"({fl['skipped']} skipped as unchanged; backbone load {fl['load_s']:.1f} s, not included)")
+        ef = res["cold"][0].get("embed_frames", {})
+        if ef.get("frames"):
+            print(f"cold night: {ef['frames_skipped']} of {ef['frames']} sampled frames skipped as unchanged "
+                  f"({ef['frames_skipped'] / ef['frames']:.1%})")
+        print("backbone images/s (224 px, batch 32, 2 threads): "
+              + ", ".join(f"{k} {v:.1f}" for k, v in rates.items())
+              + f"; ratio {rates['onnxruntime float32'] / rates['torch float32']:.2f}x")
 
         cw, cf = res["cold"][1], res["cold"][0]["elapsed_s"]
         print("\nratios (wall | flow)")

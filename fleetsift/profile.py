@@ -16,8 +16,8 @@ from pathlib import Path
 from typing import Any
 
 from fleetsift.errors import ProfileError
-from fleetsift.vocabulary import (BASELINE_SOURCES, DESCRIPTOR_KINDS, KNN_STATS, KNN_UNITS, METRICS, SCORING_METHODS,
-                                  STAMP_SOURCES, STREAM_KINDS, TIME_UNITS)
+from fleetsift.vocabulary import (BASELINE_SOURCES, DESCRIPTOR_KINDS, KNN_STATS, KNN_UNITS, METRICS, PRECISIONS,
+                                  RUNTIMES, SCORING_METHODS, STAMP_SOURCES, STREAM_KINDS, TIME_UNITS)
 
 PROFILE_NAME = "profile.toml"
 
@@ -58,6 +58,12 @@ class VideoStream:
     image_size: int = 224
     threads: int = 2
     batch_size: int = 8
+    # Frames that differ from the last embedded one by less than this (largest pixel difference of a 32 x 32 grey
+    # thumbnail, in 0..1 grey levels) reuse its embedding; 0 embeds every sampled frame. Chosen by measurement
+    # (bench/embed.py; README, Performance).
+    skip_threshold: float = 0.006
+    runtime: str = "onnxruntime"  # RUNTIMES: who runs the backbone
+    precision: str = "float32"  # PRECISIONS
     topic: str = ""  # for image topics in a ROS 2 bag
     stamp: str = "header"
     kind: str = "video"
@@ -390,6 +396,9 @@ def _parse_video(c: _Checker, name: str, st: dict, where: str) -> VideoStream:
     allowed = {f for f in VideoStream.__dataclass_fields__} - {"name"}
     c.no_unknown(st, allowed, where)
     weights = c.string(st, "weights", where, "")
+    if st.get("precision") == "int8" and st.get("runtime", VideoStream.runtime) != "onnxruntime":
+        c.fail(f"{where}.precision", 'precision = "int8" with runtime = "onnxruntime" (the int8 path is an ONNX '
+               'Runtime graph)', f'runtime = {st.get("runtime")!r}')
     return VideoStream(
         name=name,
         file=c.relative_file(st, "file", where),
@@ -401,6 +410,9 @@ def _parse_video(c: _Checker, name: str, st: dict, where: str) -> VideoStream:
         image_size=c.integer(st, "image_size", where, VideoStream.image_size, lo=32),
         threads=c.integer(st, "threads", where, VideoStream.threads, lo=1),
         batch_size=c.integer(st, "batch_size", where, VideoStream.batch_size, lo=1),
+        skip_threshold=c.number(st, "skip_threshold", where, VideoStream.skip_threshold, nonneg=True, hi=1),
+        runtime=c.string(st, "runtime", where, VideoStream.runtime, choices=RUNTIMES),
+        precision=c.string(st, "precision", where, VideoStream.precision, choices=PRECISIONS),
         topic=c.string(st, "topic", where, ""),
         stamp=c.string(st, "stamp", where, "header", choices=STAMP_SOURCES),
     )

@@ -22,6 +22,7 @@ import inspect
 import io
 import json
 import os
+import shutil
 import tempfile
 import time
 from pathlib import Path
@@ -156,6 +157,65 @@ def _atomic_write_bytes(path: Path, data: bytes) -> None:
         raise
 
 
+class RowWriter:
+    """Rows of one 2-D array appended to a temporary file as they come, then written with small arrays into an
+    ``.npz`` atomically: memory stays flat however many rows there are (np.savez needs the whole array).
+
+    The .npz is what np.savez writes (an uncompressed zip of .npy members), so ``Store.load_arrays`` and
+    ``np.load`` read it; nothing appears at ``path`` before ``commit``, and ``abort`` (or an exception inside
+    ``with``) removes the temporary file."""
+
+    def __init__(self, path: str | Path, name: str, width: int, dtype: Any = np.float32):
+        self.path, self.name, self.width, self.dtype = Path(path), name, int(width), np.dtype(dtype)
+        self.path.parent.mkdir(parents=True, exist_ok=True)
+        fd, tmp = tempfile.mkstemp(dir=self.path.parent, prefix=f".{self.path.name}.", suffix=".rows.tmp")
+        self._tmp = Path(tmp)
+        self._fh = os.fdopen(fd, "wb")
+        self.n = 0
+
+    def append(self, rows: np.ndarray) -> None:
+        rows = np.ascontiguousarray(rows, dtype=self.dtype).reshape(-1, self.width)
+        self._fh.write(rows.tobytes())
+        self.n += len(rows)
+
+    def commit(self, **small: Any) -> Path:
+        import zipfile
+
+        self._fh.close()
+        fd, tmp = tempfile.mkstemp(dir=self.path.parent, prefix=f".{self.path.name}.", suffix=".tmp")
+        os.close(fd)
+        try:
+            with zipfile.ZipFile(tmp, "w", zipfile.ZIP_STORED, allowZip64=True) as zf:
+                for key, value in small.items():
+                    with zf.open(f"{key}.npy", "w", force_zip64=True) as f:
+                        np.lib.format.write_array(f, np.asanyarray(value), allow_pickle=False)
+                with zf.open(f"{self.name}.npy", "w", force_zip64=True) as f:
+                    header = {"descr": np.lib.format.dtype_to_descr(self.dtype), "fortran_order": False,
+                              "shape": (self.n, self.width)}
+                    np.lib.format.write_array_header_2_0(f, header)
+                    with open(self._tmp, "rb") as src:
+                        shutil.copyfileobj(src, f, 1 << 22)
+            with open(tmp, "rb+") as f:
+                os.fsync(f.fileno())
+            os.replace(tmp, self.path)
+        finally:
+            with contextlib.suppress(FileNotFoundError):
+                os.unlink(tmp)
+            self.abort()
+        return self.path
+
+    def abort(self) -> None:
+        self._fh.close()
+        with contextlib.suppress(FileNotFoundError):
+            os.unlink(self._tmp)
+
+    def __enter__(self) -> "RowWriter":
+        return self
+
+    def __exit__(self, *exc) -> None:
+        self.abort()
+
+
 class Store:
     def __init__(self, root: str | Path):
         self.root = Path(root).resolve()
@@ -205,6 +265,10 @@ class Store:
             os.close(fd)
 
     # --- arrays ---------------------------------------------------------------------------------------------------
+    def row_writer(self, path: Path, name: str, width: int, dtype: Any = np.float32) -> RowWriter:
+        """A writer of one large 2-D array that never holds it in memory (see RowWriter)."""
+        return RowWriter(path, name, width, dtype)
+
     def save_arrays(self, path: Path, **arrays: Any) -> Path:
         buf = io.BytesIO()
         np.savez(buf, **arrays)

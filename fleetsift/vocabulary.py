@@ -27,3 +27,7 @@ KNN_UNITS = ("recording", "window")
 BASELINE_SOURCES = ("history", "batch", "recordings")
 # An engineer's verdict on a window or a recording.
 VERDICTS = ("normal", "fault")
+# Who runs the frame-embedding backbone: torch itself, or its ONNX export in ONNX Runtime's CPU provider.
+RUNTIMES = ("torch", "onnxruntime")
+# Arithmetic of the backbone: float32, or int8 (ONNX Runtime static quantisation, calibrated on the fleet's frames).
+PRECISIONS = ("float32", "int8")

@@ -114,6 +114,9 @@ def prepare_recordings(tables: Callable[..., dict], embed: Callable[..., dict], 
 
     prepared = []
     stats = {"tables": {"computed": 0, "reused": 0}, "embed": {"computed": 0, "reused": 0}}
+    # Of tonight's computed embeddings (reused ones cost nothing tonight): frames sampled, frames whose embedding
+    # was reused as unchanged (skip_threshold), damaged spans decoding skipped to the next keyframe.
+    frames = {"frames": 0, "frames_skipped": 0, "damaged_spans": 0}
     for (rec, prof), tab, emb in zip(jobs, tabs, embs):
         name = Path(rec).name
         if tab["status"] == "ok":
@@ -121,6 +124,8 @@ def prepare_recordings(tables: Callable[..., dict], embed: Callable[..., dict], 
         if emb["status"] == "ok":
             stats["embed"]["reused"] += emb["reused"]
             stats["embed"]["computed"] += emb["computed"]
+            for k in frames:
+                frames[k] += emb.get(k, 0)
         if tab["status"] == "ok" and tab["duration_s"] < fleet.windowing.window_s:
             tab = {"status": "quarantined", "content": tab["content"], "duration_s": tab["duration_s"],
                    "reason": f"{rec}: windowing.window_s: expected a recording at least one window "
@@ -133,6 +138,7 @@ def prepare_recordings(tables: Callable[..., dict], embed: Callable[..., dict], 
         prepared.append({"tables": tab, "embed": emb})
         rows[name] = {"recording_id": name, "content_hash": tab["content"], "duration_s": tab["duration_s"],
                       "status": "scored", "reason": ""}
+    stats["embed_frames"] = frames  # run_night moves it beside "stages" (whose entries count items)
     return prepared, rows, stats
 
 
@@ -153,6 +159,7 @@ def run_night(steps: Steps, inbox: str, store: str, profile_path: str | None = N
     prepared, rec_rows, stats = prepare_recordings(steps.tables, steps.embed, fleet, recs, str(st.root),
                                                    parallel=parallel, progress=progress, force_tables=force["tables"],
                                                    force_embed=force["embed"])
+    embed_frames = stats.pop("embed_frames")
     stats["score"] = {"computed": 0, "reused": 0}
 
     score = None
@@ -169,4 +176,5 @@ def run_night(steps: Steps, inbox: str, store: str, profile_path: str | None = N
     written = steps.write(str(st.root), run_id, started, fleet, __version__, rows, score, str(inbox_p))
     return {"run_id": run_id, "store": str(st.root), "store_version": written["version"],
             "windows_version": written["windows_version"], "score": score, "recordings": rows, "stages": stats,
+            "embed_frames": embed_frames,
             "profile": fleet.path, "elapsed_s": round(time.time() - started, 2)}

@@ -12,6 +12,7 @@ import functools
 import hashlib
 import json
 import sys
+import threading
 import time
 from pathlib import Path
 from typing import Any
@@ -31,6 +32,7 @@ from fleetsift.scoring.history import Bank, Reviews, assemble
 # embedding never loads them.
 
 _BACKBONES: dict[tuple, Any] = {}
+_BACKBONES_LOCK = threading.Lock()
 
 
 class NotCached(Exception):
@@ -49,7 +51,8 @@ STAGE_CODE: dict[str, tuple[str, ...]] = {
     "score": tuple(codebase.subpackage("fleetsift.scoring")),
 }
 STAGE_FUNCTIONS: dict[str, tuple[str, ...]] = {
-    "tables": ("run_tables",), "embed": ("run_embed", "_frames"),
+    "tables": ("run_tables",), "embed": ("run_embed", "_frames", "_backbone", "skip_gap_s", "int8_calibration",
+                        "int8_calibration_recordings"),
     "score": ("run_score", "load_features", "space_key", "table_streams_of", "load_history", "load_reviews",
               "_history_digest", "_save_baseline"),
 }
@@ -122,22 +125,37 @@ def run_tables(rec_dir: str, profile: Profile, store_root: str, cached_only: boo
         return quarantined(rec_id, str(e))
 
 
-def _backbone(stream: VideoStream):
+def _backbone(stream: VideoStream, store: Store, calibration=None):
+    """The stream's backbone, loaded once per process (Prefect's worker threads share it; its calls are
+    serialised inside, so concurrent recordings never run more than `threads` model threads)."""
     from fleetsift.featurizers import embed
 
-    key = (stream.backbone, stream.weights, stream.image_size, stream.threads)
-    if key not in _BACKBONES:
-        _BACKBONES[key] = embed.load_backbone(stream.backbone, weights=stream.weights or None,
-                                              threads=stream.threads, image_size=stream.image_size)
-    return _BACKBONES[key]
+    key = (stream.backbone, stream.weights, stream.image_size, stream.threads, stream.runtime, stream.precision,
+           str(store.root) if stream.runtime == "onnxruntime" else "",  # the graph is cached in the store
+           "" if calibration is None else hashlib.sha256(np.ascontiguousarray(calibration).tobytes()).hexdigest())
+    with _BACKBONES_LOCK:
+        if key not in _BACKBONES:
+            bb = embed.load_backbone(stream.backbone, weights=stream.weights or None, threads=stream.threads,
+                                     image_size=stream.image_size)
+            if stream.runtime == "onnxruntime":
+                fp = weights.backbone_fingerprint(stream.backbone, stream.weights or None)
+                bb.use_onnxruntime(store.root / "cache" / "onnx", fp, stream.precision, calibration)
+            _BACKBONES[key] = bb
+        return _BACKBONES[key]
 
 
-def _frames(path: Path, stream: VideoStream):
+def _frames(path: Path, stream: VideoStream, stats: dict | None = None):
     if stream.topic:
         from fleetsift.featurizers import logs
 
         return logs.iter_bag_images(path, stream.topic, stream.sample_hz, stamp=stream.stamp)
-    return video.iter_frames(path, stream.sample_hz)
+    # One decoder thread: decoding runs in its own thread beside the model's `threads` (embed_frames' prefetch).
+    return video.iter_frames(path, stream.sample_hz, threads=1, stats=stats)
+
+
+def skip_gap_s(stream: VideoStream) -> float:
+    """Frames farther apart than this are never skipped (a timestamp gap): two sampling intervals."""
+    return 2.0 / stream.sample_hz
 
 
 def _bar_to(bar):
@@ -148,13 +166,16 @@ def _bar_to(bar):
 
 def run_embed(rec_dir: str, profile: Profile, store_root: str, progress: bool = True,
               cached_only: bool = False, force_streams: tuple[str, ...] = ()) -> dict:
-    """Video streams -> per-frame backbone embeddings at their presentation timestamps (one .npz per stream);
-    streams named in `force_streams` are recomputed even when cached."""
+    """Video streams -> per-frame backbone embeddings at their presentation timestamps (one .npz per stream,
+    written as the batches come: memory stays flat in the video's length); streams named in `force_streams`
+    are recomputed even when cached. The output counts the frames embedded and skipped (`skip_threshold`) and
+    the damaged spans decoding resumed after."""
     store = Store(store_root)
     rec_dir = Path(rec_dir)
     rec_id = rec_dir.name
     outputs = {}
     reused = computed = 0
+    counts = {"frames": 0, "frames_skipped": 0, "damaged_spans": 0}
     try:
         for stream in profile.video_streams():
             path = recording.resolve_stream_file(rec_dir, stream.file, stream.name)
@@ -163,7 +184,10 @@ def run_embed(rec_dir: str, profile: Profile, store_root: str, progress: bool = 
             # Clock offset, PCA size and thread count do not change the embeddings: they stay out of the key.
             section = {"file": stream.file, "topic": stream.topic, "stamp": stream.stamp,
                        "sample_hz": stream.sample_hz, "backbone": stream.backbone, "weights": weights_fp,
-                       "image_size": stream.image_size}
+                       "image_size": stream.image_size, "skip_threshold": stream.skip_threshold,
+                       "runtime": stream.runtime, "precision": stream.precision}
+            if stream.precision == "int8":  # the quantised graph depends on the frames it was calibrated on
+                section["calibration"] = int8_calibration_recordings(rec_dir.parent, profile)
             key = stage_key("embed", content, section, stage_version("embed"))
             out = store.cache_path("embed", key)
             if out.exists() and stream.name not in force_streams:
@@ -171,29 +195,78 @@ def run_embed(rec_dir: str, profile: Profile, store_root: str, progress: bool = 
             elif cached_only:
                 raise NotCached(f"embeddings of {rec_id}/{stream.name}")
             else:
-                bb = _backbone(stream)
+                from fleetsift.featurizers import embed
+
+                calibration = None
+                if stream.precision == "int8":
+                    calibration = int8_calibration(rec_dir.parent, profile, stream)
+                bb = _backbone(stream, store, calibration)
                 bar = None
                 if progress:
                     from tqdm import tqdm
 
                     info = video.probe_video(path) if not stream.topic else {}
-                    total = int(info.get("duration_s", 0) * stream.sample_hz) or None
+                    total = int((info.get("duration_s") or 0) * stream.sample_hz) or None
                     bar = tqdm(total=total, desc=f"embed {rec_id}/{stream.name}", unit="frame", file=sys.stderr,
                                leave=False, mininterval=1.0)
-                from fleetsift.featurizers import embed
-
-                t, e = embed.embed_frames(_frames(path, stream), bb, batch_size=stream.batch_size,
-                                          progress=(_bar_to(bar) if bar is not None else None))
-                if bar is not None:
-                    bar.close()
-                if len(t) == 0:
-                    raise InputError(path, f"streams.{stream.name}", "a video with decodable frames", "no frames")
-                store.save_arrays(out, t=t, emb=e.astype(np.float32))
+                vstats: dict = {}
+                estats: dict = {}
+                with store.row_writer(out, "emb", bb.dim) as writer:
+                    t, _ = embed.embed_frames(_frames(path, stream, vstats), bb, batch_size=stream.batch_size,
+                                              progress=(_bar_to(bar) if bar is not None else None),
+                                              skip_threshold=stream.skip_threshold, max_gap_s=skip_gap_s(stream),
+                                              sink=lambda _t, rows: writer.append(rows), stats=estats,
+                                              decode_ahead=2 * stream.batch_size)
+                    if bar is not None:
+                        bar.close()
+                    if len(t) == 0:
+                        raise InputError(path, f"streams.{stream.name}", "a video with decodable frames",
+                                         "no frames")
+                    gaps = [[-1.0 if a is None else a, b] for a, b in vstats.get("gaps", [])]
+                    meta = {"frames": estats["n_frames"], "frames_skipped": estats["n_skipped"],
+                            "damaged_spans": vstats.get("n_damaged", 0), "runtime": bb.runtime,
+                            "precision": bb.precision}
+                    writer.commit(t=t, gaps=np.asarray(gaps, np.float64).reshape(-1, 2),
+                                  meta=np.array(json.dumps(meta)))
+                counts["frames"] += meta["frames"]
+                counts["frames_skipped"] += meta["frames_skipped"]
+                counts["damaged_spans"] += meta["damaged_spans"]
                 computed += 1
             outputs[stream.name] = str(out)
-        return {"recording_id": rec_id, "status": "ok", "paths": outputs, "reused": reused, "computed": computed}
+        return {"recording_id": rec_id, "status": "ok", "paths": outputs, "reused": reused, "computed": computed,
+                **counts}
     except InputError as e:
         return quarantined(rec_id, str(e))
+
+
+def int8_calibration_recordings(inbox: Path, profile: Profile, n_recordings: int = 4) -> list[str]:
+    names = list(profile.baseline.recordings) or sorted(p.name for p in inbox.iterdir() if p.is_dir())
+    return names[:n_recordings]
+
+
+def int8_calibration(inbox: Path, profile: Profile, stream: VideoStream, n_recordings: int = 4,
+                     per_recording: int = 4):
+    """Calibration frames for int8, from the fleet's own baseline recordings: those of `[baseline] recordings`
+    when named, else the inbox's first recordings by name; the first sampled frames of each. The same frames
+    for every recording of the fleet, so their embeddings stay comparable."""
+    import numpy as np
+
+    frames = []
+    for name in int8_calibration_recordings(inbox, profile, n_recordings):
+        try:
+            path = recording.resolve_stream_file(inbox / name, stream.file, stream.name)
+            it = _frames(path, stream)
+            for _, (_, rgb) in zip(range(per_recording), it):
+                frames.append(rgb)
+            close = getattr(it, "close", None)
+            if close is not None:
+                close()
+        except InputError:
+            continue
+    if not frames or any(f.shape != frames[0].shape for f in frames):
+        raise InputError(inbox, f"streams.{stream.name}.precision",
+                         "baseline recordings with frames of one size to calibrate int8 on", f"{len(frames)} frames")
+    return np.stack(frames)
 
 
 def load_features(profile: Profile, tab: dict, emb: dict) -> fleet.RecordingFeatures:

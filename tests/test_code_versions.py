@@ -21,7 +21,8 @@ RUNS = {
     "embed": {"video", "embed", "weights", "logs"},
     "score": {"descriptors", "pca", "tables", "geometry", "index", "baseline", "fleet", "evaluation", "history"},
 }
-STAGE_FUNCTIONS = {"tables": ["run_tables"], "embed": ["run_embed", "_frames"],
+STAGE_FUNCTIONS = {"tables": ["run_tables"], "embed": ["run_embed", "_frames", "_backbone", "skip_gap_s", "int8_calibration",
+                                                     "int8_calibration_recordings"],
                    "score": ["run_score", "load_features", "space_key", "table_streams_of", "load_history",
                              "load_reviews", "_history_digest", "_save_baseline"]}
 LAYER_MODULES = [m for m in codebase.module_files() if m.startswith(("fleetsift.featurizers.", "fleetsift.scoring."))]

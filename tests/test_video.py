@@ -229,3 +229,41 @@ def test_write_video_argument_checks(tmp_path):
         write_video(tmp_path / "b.mp4", _frames(2), fps=15, codec="mpeg4", pts=[0, 6000], time_base=TB)
     with pytest.raises(ValueError):
         write_video(tmp_path / "c.mp4", [], fps=15)
+
+
+def test_mid_file_damage_resumes_at_next_keyframe_and_is_a_gap(tmp_path):
+    from fleetsift.featurizers.tables import place_on_clock
+    from fleetsift.scoring.fleet import video_gap_s
+
+    src = tmp_path / "clean.mp4"
+    n, fps = 150, 15
+    write_video(src, _frames(n), fps=fps, options={"crf": "18", "g": "15"})  # a keyframe every second
+    with av.open(str(src)) as c:
+        tb = c.streams.video[0].time_base
+        packets = [(p.pts, p.pos, p.size) for p in c.demux(c.streams.video[0]) if p.size]
+    data = bytearray(src.read_bytes())
+    rng = np.random.default_rng(0)
+    for _, pos, size in packets[68:74]:  # overwrite six packets' bytes in the middle of the file
+        data[pos:pos + size] = rng.integers(0, 256, size, dtype=np.uint8).tobytes()
+    path = tmp_path / "damaged.mp4"
+    path.write_bytes(bytes(data))
+    clean = [t for t, _ in video.iter_frames(src)]
+    stats = {}
+    got = [t for t, _ in video.iter_frames(path, stats=stats)]
+    assert stats["n_damaged"] == 1 and len(stats["gaps"]) == 1 and not stats["truncated"]
+    lo, hi = stats["gaps"][0]
+    damaged_t = sorted(float(p * tb) for p, _, _ in packets[68:74])
+    assert lo <= damaged_t[0] and hi >= damaged_t[-1]  # the span covers the damaged frames
+    # Decoding went on: every frame after the span decodes, with its exact time; none inside it is yielded.
+    after = [t for t in clean if t > hi]
+    assert len(after) > 60 and [t for t in got if t > hi] == after
+    assert not [t for t in got if lo <= t <= hi]
+    assert stats["n_skipped_packets"] == len([t for t in clean if lo <= t <= hi])
+    # The span is a gap on the common clock: samples inside it are invalid, those well outside valid.
+    t_clock = np.arange(0.0, n / fps, 0.02)
+    _, valid = place_on_clock(np.asarray(got), np.zeros((len(got), 1)), t_clock, video_gap_s(5.0, 0.25))
+    inside = (t_clock > lo + 0.1) & (t_clock < hi - 0.1)
+    assert inside.any() and not valid[inside].any()
+    assert valid[(t_clock > 1.0) & (t_clock < lo - 0.5)].all()
+    assert valid[(t_clock > hi + 0.5) & (t_clock < clean[-1])].all()
+

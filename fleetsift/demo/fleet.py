@@ -998,6 +998,9 @@ weights = ""
 pca_dim = 6                # principal components of the embeddings kept as channels (plus the PCA residual)
 image_size = 224
 threads = 2
+skip_threshold = 0.006    # a frame this close to the last embedded one (largest thumbnail pixel change) reuses it
+runtime = "onnxruntime"   # or "torch"; the ONNX export is cached in the store by weights fingerprint
+precision = "float32"     # "int8" only where it passes the accuracy guard (README, Performance)
 """
 
 
