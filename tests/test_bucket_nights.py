@@ -162,11 +162,14 @@ def _popen(s3, args: list[str], log: Path, harness: str | None = None) -> subpro
 
 
 @pytest.fixture(scope="module")
-def ttl_store(s3, local):
-    """A bucket store with one finished night, its inbox's profile carrying a 4 s lock time to live."""
+def ttl_store(s3, bucket_nights):
+    """A bucket store with finished nights (a server-side copy of the bucket nights' inbox and store, so its
+    first night here is warm), its inbox's profile carrying a 4 s lock time to live."""
     s3.bucket("ttl")
-    inbox = s3.upload(local[0], "ttl", "inbox")
     c = s3.client()
+    for key in s3.keys("fleet"):
+        c.copy_object(Bucket="ttl", Key=key, CopySource={"Bucket": "fleet", "Key": key})
+    inbox = "s3://ttl/inbox"
     prof = c.get_object(Bucket="ttl", Key="inbox/profile.toml")["Body"].read().decode()
     c.put_object(Bucket="ttl", Key="inbox/profile.toml", Body=(prof + TTL_PROFILE).encode())
     store = "s3://ttl/store"
@@ -251,6 +254,7 @@ def test_kill_mid_write_then_rerun_takes_the_stale_lock_over(s3, aws, ttl_store,
 # --- Dask: workers that share no disk -------------------------------------------------------------------------------------
 
 def test_dask_cluster_workers_read_the_inbox_from_the_bucket(s3, aws, local, tmp_path):
+    import cloudpickle
     from distributed import Client, LocalCluster
 
     from fleetsift.store import Store
@@ -263,6 +267,7 @@ def test_dask_cluster_workers_read_the_inbox_from_the_bucket(s3, aws, local, tmp
                            env=s3.env())
     try:
         client = Client(cluster)
+        cloudpickle.register_pickle_by_value(sys.modules[__name__])  # the workers cannot import this test module
         workers = sorted(client.scheduler_info()["workers"])
         assert len(workers) == 2
         # Each worker its own temporary folder: nothing a worker writes locally is seen by the other.
@@ -273,6 +278,9 @@ def test_dask_cluster_workers_read_the_inbox_from_the_bucket(s3, aws, local, tmp
         tmps = client.run(_tmp)
         assert len(set(tmps.values())) == 2
         out = run_json(s3, inbox, store, "--runner", "dask", "--dask-address", cluster.scheduler_address)
+        # The stages ran in the worker processes, which opened the bucket themselves (from the URLs they got).
+        opened = client.run(_buckets_opened)
+        assert any("s3://dask" in b for b in opened.values()), opened
         client.close()
     finally:
         cluster.close()
@@ -292,3 +300,9 @@ def _tmp() -> str:
     import tempfile
 
     return tempfile.gettempdir()
+
+
+def _buckets_opened() -> list[str]:
+    from fleetsift import location
+
+    return sorted(location._SETTINGS)
