@@ -28,10 +28,6 @@ _FILESYSTEMS: dict[tuple, Any] = {}
 BLOCK_SIZE = 8 << 20
 
 
-def is_url(x: Any) -> bool:
-    return isinstance(x, ObjectPath) or (isinstance(x, str) and "://" in x and not x.startswith("file://"))
-
-
 def location(x: "str | Path | ObjectPath", storage: Storage | None = None) -> "Path | ObjectPath":
     """A local `Path` (``file://`` URLs included) or an `ObjectPath` for any other fsspec URL."""
     if isinstance(x, ObjectPath):
@@ -270,10 +266,6 @@ def write_atomic(path: "Path | ObjectPath", data: bytes) -> None:
         with contextlib.suppress(FileNotFoundError):
             os.unlink(tmp)
         raise
-
-
-def read_bytes(x: "str | Path | ObjectPath") -> bytes:
-    return location(x).read_bytes()
 
 
 def read_parquet(x: "str | Path | ObjectPath"):
