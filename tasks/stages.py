@@ -22,7 +22,7 @@ import pandas as pd
 from fleetsift import codebase
 from fleetsift.errors import InputError
 from fleetsift.profile import Profile, VideoStream
-from fleetsift.location import location, read_parquet, write_atomic
+from fleetsift.location import ObjectPath, location, read_parquet, write_atomic
 from fleetsift.store import Store, code_version, stage_key
 from fleetsift.vocabulary import METRICS
 from fleetsift.featurizers import recording, video, weights
@@ -136,6 +136,10 @@ def _backbone(stream: VideoStream):
 def _frames(path: Path, stream: VideoStream):
     if stream.topic:
         from fleetsift.featurizers import logs
+
+        if isinstance(path, ObjectPath):
+            raise InputError(path, f"streams.{stream.name}.file", "a video file on object storage (ROS 2 bags are "
+                             "read from local folders only)", "a bag")
 
         return logs.iter_bag_images(path, stream.topic, stream.sample_hz, stamp=stream.stamp)
     return video.iter_frames(path, stream.sample_hz)

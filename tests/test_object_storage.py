@@ -261,3 +261,16 @@ def test_storage_anonymous_and_region_reach_the_clients(s3, monkeypatch):
     from fleetsift.objectlock import _s3_client
 
     assert _s3_client(location(f"s3://{bucket}/x", Storage(region="eu-west-1"))).meta.region_name == "eu-west-1"
+
+
+def test_a_log_on_object_storage_is_refused_by_name(aws_env, bucket):
+    """ULog files and ROS 2 bags are read from local folders only: a clear error naming the file and the field."""
+    from fleetsift.errors import InputError
+    from fleetsift.featurizers import recording
+    from fleetsift.location import location
+
+    rec = location(f"s3://{bucket}/inbox/rec")
+    (rec / "flight.ulg").write_bytes(b"ULog\x01\x12\x35")
+    prof = parse_profile('[streams.imu]\nkind = "table"\nfile = "flight.ulg"\ntopic = "sensor_combined"\n')
+    with pytest.raises(InputError, match=r"flight.ulg.*streams.imu.file.*local folders only"):
+        recording.read_table_stream(rec, prof.streams["imu"])
