@@ -11,13 +11,14 @@ from pathlib import Path
 import numpy as np
 
 from fleetsift.errors import InputError
+from fleetsift.location import ObjectPath, resolved
 from fleetsift.featurizers.logs import BAG_SUFFIXES, ULOG_SUFFIXES
 from fleetsift.featurizers.tables import RawTable, clean_table, read_table_file, resample, uniform_clock
 
 
 def resolve_stream_file(rec_dir: Path, pattern: str, stream: str) -> Path:
     """The one file in the recording folder that a stream's `file` (name or glob) names."""
-    rec_dir = Path(rec_dir).resolve()
+    rec_dir = resolved(rec_dir)
     field = f"streams.{stream}.file"
     try:
         found = sorted(rec_dir.glob(pattern))
@@ -51,7 +52,7 @@ def resolve_stream_file(rec_dir: Path, pattern: str, stream: str) -> Path:
             got = "not a regular file (a device, socket or pipe)"
         raise InputError(path, field, "a regular file", got)
     try:
-        if path.is_file():
+        if path.is_file() and not isinstance(path, ObjectPath):  # an object's listing proves it readable enough
             with open(path, "rb") as f:
                 f.read(1)
     except OSError as e:
@@ -70,6 +71,10 @@ def read_table_stream(rec_dir: Path, stream) -> RawTable:
     gaps: list[tuple[float, float]] = []
     if path.suffix.lower() in ULOG_SUFFIXES + BAG_SUFFIXES or path.is_dir():
         from fleetsift.featurizers import logs
+
+        if isinstance(path, ObjectPath):
+            raise InputError(path, f"streams.{stream.name}.file", "a CSV or Parquet table on object storage "
+                             "(ULog files and ROS 2 bags are read from local folders only)", "a log")
 
         kind = logs.log_kind(path)
         if kind == "ulog":

@@ -7,6 +7,7 @@ from __future__ import annotations
 
 import warnings
 from dataclasses import dataclass, field
+import io
 from pathlib import Path
 
 import numpy as np
@@ -14,6 +15,7 @@ import pandas as pd
 from scipy import signal
 
 from fleetsift.errors import InputError
+from fleetsift.location import ObjectPath, location
 from fleetsift.vocabulary import TIME_UNITS
 
 # Share of rows that may be repaired (non-finite cells, out-of-order stamps) before the stream counts as broken.
@@ -34,18 +36,20 @@ class RawTable:
 
 def read_table_file(path: Path, time_column: str, channels: list[str]) -> tuple[np.ndarray, np.ndarray]:
     """Read a CSV or Parquet file; return raw time values and the channel matrix (not yet checked)."""
-    path = Path(path)
+    path = location(path)
     suffix = path.suffix.lower()
     try:
+        # A table on object storage is read in one GET (tables are small beside video).
+        src = io.BytesIO(path.read_bytes()) if isinstance(path, ObjectPath) else path
         if suffix in (".parquet", ".pq"):
-            df = pd.read_parquet(path)
+            df = pd.read_parquet(src)
         elif suffix in (".csv", ".txt", ".tsv"):
             with warnings.catch_warnings():
                 # index_col=False: without it a first data row with one field more than the header silently turns
                 # the time column into the index and shifts every column by one. The warning pandas then gives
                 # (extra fields dropped) becomes an error: samples must never be dropped unseen.
                 warnings.simplefilter("error", pd.errors.ParserWarning)
-                df = pd.read_csv(path, sep="\t" if suffix == ".tsv" else ",", low_memory=False, index_col=False)
+                df = pd.read_csv(src, sep="\t" if suffix == ".tsv" else ",", low_memory=False, index_col=False)
         else:
             raise InputError(path, "file type", "a .csv or .parquet table (or a ULog / ROS 2 bag log)", suffix)
     except InputError:

@@ -18,6 +18,7 @@ import numpy as np
 from av.video.reformatter import VideoReformatter
 
 from fleetsift.errors import InputError
+from fleetsift.location import ObjectPath, location
 
 log = logging.getLogger(__name__)
 
@@ -89,7 +90,12 @@ def _open(path: Path):
     if not path.is_file():
         raise InputError(path, "file", "a video file", "a directory or special file")
     try:
-        container = av.open(str(path), mode="r")
+        if isinstance(path, ObjectPath):
+            # Streamed through a file-like object (ranged GETs with read-ahead): never copied whole to local disk.
+            # The file object is closed with the container's last reference (fsspec files close when collected).
+            container = av.open(path.open("rb"), mode="r")
+        else:
+            container = av.open(str(path), mode="r")
     except av.FFmpegError as e:
         raise InputError(path, "container", "a video file FFmpeg can read", f"{type(e).__name__}: {e}") from None
     if not container.streams.video:
@@ -105,7 +111,7 @@ def probe_video(path: str | Path) -> dict:
 
     No frame is decoded; for containers without a duration the value is FFmpeg's estimate (or None).
     """
-    path = Path(path)
+    path = location(path)
     container, stream = _open(path)
     try:
         tb = stream.time_base
@@ -185,7 +191,7 @@ def iter_frames(path: str | Path, sample_hz: float | None = None, size: tuple[in
     InputError(field="frames") when iterated; frames without a pts raise InputError(field="frame pts").
     A missing or unreadable file, or one without a video stream, raises InputError at the call itself.
     """
-    path = Path(path)
+    path = location(path)
     if sample_hz is not None and (not math.isfinite(sample_hz) or sample_hz < 0):
         raise ValueError(f"sample_hz must be a finite number >= 0, got {sample_hz}")
     if size is not None and (len(size) != 2 or min(size) < 1):

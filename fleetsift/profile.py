@@ -120,6 +120,18 @@ class BaselineSpec:
 
 
 @dataclass(frozen=True)
+class Storage:
+    """[storage]: how to reach an inbox or store on object storage (credentials only ever from the environment)."""
+
+    endpoint_url: str = ""  # an S3-compatible server; empty: AWS_ENDPOINT_URL(_S3) or AWS itself
+    region: str = ""  # empty: AWS_REGION / AWS_DEFAULT_REGION
+    anonymous: bool = False  # unsigned requests (a public bucket)
+    # The store's lock object expires this long after its holder last renewed it (renewed every third of it):
+    # a night killed with the lock held blocks the store at most this long.
+    lock_ttl_s: float = 300.0
+
+
+@dataclass(frozen=True)
 class Profile:
     path: str
     streams: dict[str, TableStream | VideoStream]
@@ -127,6 +139,7 @@ class Profile:
     descriptor: Descriptor = Descriptor()
     scoring: Scoring = Scoring()
     baseline: BaselineSpec = BaselineSpec()
+    storage: Storage = Storage()  # not in digest(): where data lives never changes a score
     raw: dict = field(default_factory=dict, compare=False, repr=False)  # the parsed TOML, for recording overlays
 
     def table_streams(self) -> list[TableStream]:
@@ -267,7 +280,7 @@ def parse_profile(text: str, path: str = "<profile>") -> Profile:
 def profile_from_dict(data: dict, path: str = "<profile>") -> Profile:
     """Validate already-parsed profile data."""
     c = _Checker(path)
-    c.no_unknown(data, {"windowing", "descriptor", "scoring", "baseline", "streams"}, "")
+    c.no_unknown(data, {"windowing", "descriptor", "scoring", "baseline", "streams", "storage"}, "")
 
     w = c.table(data.get("windowing", {}), "windowing")
     c.no_unknown(w, {f for f in Windowing.__dataclass_fields__}, "windowing")
@@ -325,6 +338,15 @@ def profile_from_dict(data: dict, path: str = "<profile>") -> Profile:
                             history_max_score=c.number(b, "history_max_score", "baseline",
                                                        BaselineSpec.history_max_score))
 
+    so = c.table(data.get("storage", {}), "storage")
+    c.no_unknown(so, {f for f in Storage.__dataclass_fields__}, "storage")
+    endpoint = c.string(so, "endpoint_url", "storage", Storage.endpoint_url)
+    if endpoint and not endpoint.startswith(("http://", "https://")):
+        c.fail("storage.endpoint_url", "an http:// or https:// URL", repr(endpoint))
+    storage = Storage(endpoint_url=endpoint, region=c.string(so, "region", "storage", Storage.region),
+                      anonymous=c.boolean(so, "anonymous", "storage", Storage.anonymous),
+                      lock_ttl_s=c.number(so, "lock_ttl_s", "storage", Storage.lock_ttl_s, positive=True))
+
     raw_streams = c.table(data.get("streams", {}), "streams")
     if not raw_streams:
         c.fail("streams", "at least one [streams.NAME] section", "none")
@@ -348,7 +370,7 @@ def profile_from_dict(data: dict, path: str = "<profile>") -> Profile:
     if not any(isinstance(st, TableStream) for st in streams.values()):
         c.fail("streams", "at least one table stream (it defines the common clock)", "only video streams")
     return Profile(path=path, streams=streams, windowing=windowing, descriptor=descriptor, scoring=scoring,
-                   baseline=baseline, raw=data)
+                   baseline=baseline, storage=storage, raw=data)
 
 
 def _parse_table(c: _Checker, name: str, st: dict, where: str) -> TableStream:
@@ -418,8 +440,17 @@ def _parse_video(c: _Checker, name: str, st: dict, where: str) -> VideoStream:
     )
 
 
-def load_profile(path: str | Path) -> Profile:
-    path = Path(path)
+def _as_path(path: Any) -> Any:
+    """A local Path, or an object-storage path (fleetsift.location) for a URL (imported lazily: it imports us)."""
+    if isinstance(path, str) and "://" in path:
+        from fleetsift.location import location
+
+        return location(path)
+    return path if hasattr(path, "read_text") else Path(path)
+
+
+def load_profile(path: Any) -> Profile:
+    path = _as_path(path)
     try:
         text = path.read_text(encoding="utf-8")
     except FileNotFoundError:
@@ -456,7 +487,7 @@ def profile_for(recording_dir: Path, inbox_profile: Profile | None) -> Profile:
     """The profile a recording is read with: the inbox-level one, with the recording's own profile.toml (if any)
     laid over its stream sections, so a recording that arrives in another format restates only how to read it
     (file, topic, fields) and keeps the fleet's channel names, calibration and video settings."""
-    own = Path(recording_dir) / PROFILE_NAME
+    own = _as_path(recording_dir) / PROFILE_NAME
     if own.exists():
         if inbox_profile is None or not inbox_profile.raw:
             return load_profile(own)

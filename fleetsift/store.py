@@ -7,7 +7,10 @@ Layout of a store folder:
     catalog.json                   file content hashes keyed by (path, size, mtime) so warm runs do not re-hash
     prefect/                       Prefect's home for runs against the embedded temporary server
     reports/                       HTML reports
-    .lock                          held by the one writer
+    .lock                          held by the one writer (an fcntl lock locally, a lock object on object storage)
+
+The store may live on object storage (`s3://bucket/prefix`, see fleetsift.location): the Delta tables then go
+through deltalake's object-store support, everything else is one object per file.
 """
 
 from __future__ import annotations
@@ -34,6 +37,8 @@ import pyarrow as pa
 
 from fleetsift import __version__, codebase
 from fleetsift.errors import StoreLockedError
+from fleetsift.location import ObjectPath, delta_options, location, resolved, write_atomic
+from fleetsift.profile import Storage
 
 TABLE_SCHEMAS: dict[str, pa.Schema] = {
     "runs": pa.schema([
@@ -143,18 +148,7 @@ def stage_key(stage: str, content_hash: str, section: Any, version: str) -> str:
 
 
 def _atomic_write_bytes(path: Path, data: bytes) -> None:
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".tmp")
-    try:
-        with os.fdopen(fd, "wb") as f:
-            f.write(data)
-            f.flush()
-            os.fsync(f.fileno())
-        os.replace(tmp, path)
-    except BaseException:
-        with contextlib.suppress(FileNotFoundError):
-            os.unlink(tmp)
-        raise
+    write_atomic(path, data)
 
 
 class RowWriter:
@@ -165,10 +159,13 @@ class RowWriter:
     ``np.load`` read it; nothing appears at ``path`` before ``commit``, and ``abort`` (or an exception inside
     ``with``) removes the temporary file."""
 
-    def __init__(self, path: str | Path, name: str, width: int, dtype: Any = np.float32):
-        self.path, self.name, self.width, self.dtype = Path(path), name, int(width), np.dtype(dtype)
-        self.path.parent.mkdir(parents=True, exist_ok=True)
-        fd, tmp = tempfile.mkstemp(dir=self.path.parent, prefix=f".{self.path.name}.", suffix=".rows.tmp")
+    def __init__(self, path: "str | Path | ObjectPath", name: str, width: int, dtype: Any = np.float32):
+        self.path = path if isinstance(path, ObjectPath) else Path(path)
+        self.name, self.width, self.dtype = name, int(width), np.dtype(dtype)
+        # An object is put whole at commit: its rows gather in the local temporary folder meanwhile.
+        self._dir = Path(tempfile.gettempdir()) if isinstance(self.path, ObjectPath) else self.path.parent
+        self._dir.mkdir(parents=True, exist_ok=True)
+        fd, tmp = tempfile.mkstemp(dir=self._dir, prefix=f".{self.path.name}.", suffix=".rows.tmp")
         self._tmp = Path(tmp)
         self._fh = os.fdopen(fd, "wb")
         self.n = 0
@@ -182,7 +179,7 @@ class RowWriter:
         import zipfile
 
         self._fh.close()
-        fd, tmp = tempfile.mkstemp(dir=self.path.parent, prefix=f".{self.path.name}.", suffix=".tmp")
+        fd, tmp = tempfile.mkstemp(dir=self._dir, prefix=f".{self.path.name}.", suffix=".tmp")
         os.close(fd)
         try:
             with zipfile.ZipFile(tmp, "w", zipfile.ZIP_STORED, allowZip64=True) as zf:
@@ -195,9 +192,13 @@ class RowWriter:
                     np.lib.format.write_array_header_2_0(f, header)
                     with open(self._tmp, "rb") as src:
                         shutil.copyfileobj(src, f, 1 << 22)
-            with open(tmp, "rb+") as f:
-                os.fsync(f.fileno())
-            os.replace(tmp, self.path)
+            if isinstance(self.path, ObjectPath):
+                with open(tmp, "rb") as src, self.path.open("wb") as dst:
+                    shutil.copyfileobj(src, dst, 1 << 22)
+            else:
+                with open(tmp, "rb+") as f:
+                    os.fsync(f.fileno())
+                os.replace(tmp, self.path)
         finally:
             with contextlib.suppress(FileNotFoundError):
                 os.unlink(tmp)
@@ -217,8 +218,19 @@ class RowWriter:
 
 
 class Store:
-    def __init__(self, root: str | Path):
-        self.root = Path(root).resolve()
+    def __init__(self, root: "str | Path | ObjectPath", storage: Storage | None = None):
+        self.root = resolved(root, storage)
+        self.remote = isinstance(self.root, ObjectPath)
+        self.storage = self.root.storage if self.remote else (storage or Storage())
+        self.delta_options = delta_options(self.root.protocol, self.storage) if self.remote else None
+
+    def _table(self, name: str, version: int | None = None):
+        from deltalake import DeltaTable
+
+        return DeltaTable(str(self.table_path(name)), version=version, storage_options=self.delta_options)
+
+    def has_table(self, name: str) -> bool:
+        return (self.table_path(name) / "_delta_log").exists()
 
     # --- folders --------------------------------------------------------------------------------------------------
     def init(self) -> "Store":
@@ -231,13 +243,19 @@ class Store:
     def table_path(self, name: str) -> Path:
         return self.root / name
 
-    def cache_path(self, stage: str, key: str) -> Path:
+    def cache_path(self, stage: str, key: str) -> "Path | ObjectPath":
         return self.root / "cache" / stage / f"{key}.npz"
 
     # --- lock -----------------------------------------------------------------------------------------------------
     @contextlib.contextmanager
     def lock(self, wait_s: float = 0.0) -> Iterator[None]:
         """One writer at a time. Waits up to wait_s, then refuses with a message naming the holder."""
+        if self.remote:
+            from fleetsift.objectlock import ObjectLock
+
+            with ObjectLock(self.root / ".lock", ttl_s=self.storage.lock_ttl_s).held(wait_s):
+                yield
+            return
         self.root.mkdir(parents=True, exist_ok=True)
         path = self.root / ".lock"
         fd = os.open(path, os.O_RDWR | os.O_CREAT, 0o644)
@@ -265,37 +283,48 @@ class Store:
             os.close(fd)
 
     # --- arrays ---------------------------------------------------------------------------------------------------
-    def row_writer(self, path: Path, name: str, width: int, dtype: Any = np.float32) -> RowWriter:
+    def row_writer(self, path: "Path | ObjectPath", name: str, width: int, dtype: Any = np.float32) -> RowWriter:
         """A writer of one large 2-D array that never holds it in memory (see RowWriter)."""
         return RowWriter(path, name, width, dtype)
 
-    def save_arrays(self, path: Path, **arrays: Any) -> Path:
+    def save_arrays(self, path: "Path | ObjectPath", **arrays: Any) -> "Path | ObjectPath":
         buf = io.BytesIO()
         np.savez(buf, **arrays)
         _atomic_write_bytes(path, buf.getvalue())
         return path
 
     @staticmethod
-    def load_arrays(path: str | Path) -> dict[str, np.ndarray]:
-        with np.load(path, allow_pickle=False) as z:
+    def load_arrays(path: "str | Path | ObjectPath") -> dict[str, np.ndarray]:
+        path = location(path)
+        src = io.BytesIO(path.read_bytes()) if isinstance(path, ObjectPath) else path
+        with np.load(src, allow_pickle=False) as z:
             return {k: z[k] for k in z.files}
 
     # --- content hashes -------------------------------------------------------------------------------------------
-    def file_hash(self, path: str | Path) -> str:
-        """sha256 of a file, remembered by (path, size, mtime_ns) so an unchanged file is hashed once."""
-        path = Path(path).resolve()
-        st = path.stat()
+    def file_hash(self, path: "str | Path | ObjectPath") -> str:
+        """sha256 of a file, remembered by (path, size, mtime_ns) so an unchanged file is hashed once.
+
+        An object is remembered by (URL, size, ETag) instead, and hashed by streaming it once: its content hash is
+        then the same as a local copy's (reviews and history follow a recording moved to a bucket), and a warm
+        night reads no recording, only its listing. The ETag alone is not taken as the content hash: a multipart
+        upload's ETag is not a digest of the content, so the same bytes uploaded twice could differ.
+        """
+        path = resolved(path)
         catalog_path = self.root / "catalog.json"
         try:
             catalog = json.loads(catalog_path.read_text())
         except (FileNotFoundError, json.JSONDecodeError):
             catalog = {}
-        sig = f"{st.st_size}:{st.st_mtime_ns}"
+        if isinstance(path, ObjectPath):
+            sig = path.signature()
+        else:
+            st = path.stat()
+            sig = f"{st.st_size}:{st.st_mtime_ns}"
         entry = catalog.get(str(path))
         if entry and entry.get("sig") == sig:
             return entry["sha256"]
         h = hashlib.sha256()
-        with open(path, "rb") as f:
+        with path.open("rb") as f:
             for chunk in iter(lambda: f.read(1 << 20), b""):
                 h.update(chunk)
         digest = h.hexdigest()
@@ -305,13 +334,11 @@ class Store:
 
     # --- Delta tables ---------------------------------------------------------------------------------------------
     def has_run(self, table: str, run_id: str, column: str = "run_id") -> bool:
-        from deltalake import DeltaTable
         import pyarrow.dataset as ds
 
-        path = self.table_path(table)
-        if not (path / "_delta_log").exists():
+        if not self.has_table(table):
             return False
-        dataset = DeltaTable(str(path)).to_pyarrow_dataset()
+        dataset = self._table(table).to_pyarrow_dataset()
         return dataset.count_rows(filter=ds.field(column) == run_id) > 0
 
     def append(self, table: str, df: pd.DataFrame) -> int | None:
@@ -337,25 +364,23 @@ class Store:
                 # which pyarrow's safe cast refuses ("would lose data"). Truncate explicitly, nothing else.
                 df[f.name] = pd.to_datetime(df[f.name], utc=True).dt.floor("us")
         arrow = pa.Table.from_pandas(df, schema=schema, preserve_index=False)
-        write_deltalake(str(self.table_path(table)), arrow, mode="append", schema_mode="merge")
+        _check_lock(self.root)
+        write_deltalake(str(self.table_path(table)), arrow, mode="append", schema_mode="merge",
+                        storage_options=self.delta_options)
         return self.version(table)
 
     def version(self, table: str = "runs") -> int | None:
-        from deltalake import DeltaTable
 
-        path = self.table_path(table)
-        if not (path / "_delta_log").exists():
+        if not self.has_table(table):
             return None
-        return DeltaTable(str(path)).version()
+        return self._table(table).version()
 
     def read(self, table: str, version: int | None = None, run_id: str | None = None) -> pd.DataFrame:
-        from deltalake import DeltaTable
         import pyarrow.dataset as ds
 
-        path = self.table_path(table)
-        if not (path / "_delta_log").exists():
+        if not self.has_table(table):
             return TABLE_SCHEMAS[table].empty_table().to_pandas()
-        dataset = DeltaTable(str(path), version=version).to_pyarrow_dataset()
+        dataset = self._table(table, version).to_pyarrow_dataset()
         flt = ds.field("run_id") == run_id if run_id else None
         df = dataset.to_table(filter=flt).to_pandas()
         for f in TABLE_SCHEMAS[table]:  # a version written before a column was added
@@ -365,12 +390,10 @@ class Store:
 
     def run_ids(self, table: str) -> set[str]:
         """The distinct run_ids in one table (current version)."""
-        from deltalake import DeltaTable
 
-        path = self.table_path(table)
-        if not (path / "_delta_log").exists():
+        if not self.has_table(table):
             return set()
-        col = DeltaTable(str(path)).to_pyarrow_dataset().to_table(columns=["run_id"]).column("run_id")
+        col = self._table(table).to_pyarrow_dataset().to_table(columns=["run_id"]).column("run_id")
         return set(col.unique().to_pylist())
 
     def orphan_runs(self) -> dict[str, set[str]]:
@@ -387,27 +410,25 @@ class Store:
 
         The deletion is one more Delta version: the rows stay readable by time travel until a vacuum.
         """
-        from deltalake import DeltaTable
 
         removed = {}
         for table, ids in self.orphan_runs().items():
             quoted = ", ".join("'" + i.replace("'", "''") + "'" for i in sorted(ids))
-            res = DeltaTable(str(self.table_path(table))).delete(f"run_id IN ({quoted})")
+            _check_lock(self.root)
+            res = self._table(table).delete(f"run_id IN ({quoted})")
             removed[table] = int(res.get("num_deleted_rows", 0))
         return removed
 
     def runs_history(self) -> pd.DataFrame:
         """One row per run with the `runs` table version that committed it (for --as-of)."""
-        from deltalake import DeltaTable
 
         cols = ["version", "run_id", "finished_at", "n_recordings", "n_windows", "n_flagged", "n_quarantined",
                 "status", "baseline_id"]
-        path = self.table_path("runs")
-        if not (path / "_delta_log").exists():
+        if not self.has_table("runs"):
             return pd.DataFrame(columns=cols)
         seen: set[str] = set()
         rows = []
-        for v in range(DeltaTable(str(path)).version() + 1):
+        for v in range(self._table("runs").version() + 1):
             try:
                 df = self.read("runs", version=v)
             except Exception:  # a version removed by vacuum outside the retention
@@ -426,6 +447,8 @@ class Store:
         are kept: they may belong to a writer that is still running (`maintain` holds the store's lock, but a
         report written outside the store's runs does not take it).
         """
+        if self.remote:  # objects are written in one PUT: no temporary files to sweep
+            return {"removed": 0, "kept_recent": 0}
         limit = (time.time() if now is None else now) - float(older_than_hours) * 3600.0
         found = [p for p in self.root.glob("*.tmp")]
         for sub in ("cache", "baselines", "reports"):
@@ -451,18 +474,25 @@ class Store:
         `--as-of` read of any version committed within `retention_hours` still succeeds. Temporary files that
         killed writers left in the cache, baselines, reports and catalog are swept by the same age rule.
         """
-        from deltalake import DeltaTable
 
         out = {}
         for name in TABLES:
-            path = self.table_path(name)
-            if not (path / "_delta_log").exists():
+            if not self.has_table(name):
                 continue
-            dt = DeltaTable(str(path))
+            dt = self._table(name)
             metrics = dt.optimize.compact()
             removed = dt.vacuum(retention_hours=int(retention_hours), dry_run=False,
                                 enforce_retention_duration=retention_hours >= 168)
             out[name] = {"files_added": metrics.get("numFilesAdded"), "files_removed": metrics.get("numFilesRemoved"),
-                         "vacuumed": len(removed), "version": DeltaTable(str(path)).version()}
+                         "vacuumed": len(removed), "version": self._table(name).version()}
         out["temporary_files"] = self.sweep_temporary(retention_hours)
         return out
+
+
+def _check_lock(root: "Path | ObjectPath") -> None:
+    """Refuse a table write when this process held the store's lock object and lost it (it expired and another
+    night took it over): two nights must never interleave their appends."""
+    if isinstance(root, ObjectPath):
+        from fleetsift.objectlock import check_held
+
+        check_held(root / ".lock")

@@ -29,7 +29,9 @@ def summarise(result: dict, metric: str) -> dict:
 
     per = {}
     if result.get("score"):
-        w = pd.read_parquet(result["score"]["path"])
+        from fleetsift.location import read_parquet
+
+        w = read_parquet(result["score"]["path"])
         w = w[w["metric"] == metric]
         for rid, g in w.groupby("recording_id"):
             sc = g["score"].dropna()
@@ -102,9 +104,12 @@ def do_run(inbox: str, store: str, profile: str | None, runner: str, dask_addres
     (checked before any write) the Prefect flow runs instead.
     """
     env.configure(store)
+    from fleetsift.location import location, resolved
     from fleetsift.store import Store
 
-    st = Store(store).init()
+    storage = storage_settings(inbox, profile)
+    inbox = str(resolved(inbox, storage))
+    st = Store(store, storage).init()
     with st.lock(wait_s=wait_s):
         # Rows of a run killed between its appends belong to no completed run: drop them before writing again.
         removed = st.remove_orphans()
@@ -113,11 +118,11 @@ def do_run(inbox: str, store: str, profile: str | None, runner: str, dask_addres
         from fleetsift.flows import night
 
         if rebuild:  # a misspelt name is refused before anything starts
-            night.rebuild_plan(night.fleet_profile(Path(inbox).resolve(), profile), tuple(rebuild))
+            night.rebuild_plan(night.fleet_profile(location(inbox), profile), tuple(rebuild))
         result = None
         if orchestrate == "auto" and runner == "local" and not rebuild:
             try:
-                result = night.run_night(night.CACHED_ONLY, inbox=str(Path(inbox).resolve()), store=str(st.root),
+                result = night.run_night(night.CACHED_ONLY, inbox=inbox, store=str(st.root),
                                          profile_path=profile, progress=progress)
                 result["orchestrator"] = "none"
             except night.NotCached as e:
@@ -135,6 +140,18 @@ def do_run(inbox: str, store: str, profile: str | None, runner: str, dask_addres
             except Exception as e:  # the scores are stored; a report failure must not fail the night
                 print(f"warning: report not written: {e}", file=sys.stderr)
     return result
+
+
+def storage_settings(inbox: str, profile: str | None):
+    """The [storage] section of --profile, else of the inbox's profile.toml (then read with the environment's
+    settings alone); defaults when neither has one. A profile that does not load is reported by the night itself."""
+    from fleetsift.location import location
+    from fleetsift.profile import PROFILE_NAME, Storage, load_profile
+
+    try:
+        return load_profile(profile if profile else location(inbox) / PROFILE_NAME).storage
+    except Exception:  # unreadable here: the night reads it again and names what is wrong
+        return Storage()
 
 
 def _prefect_run(st, inbox: str, profile: str | None, runner: str, dask_address: str | None, progress: bool,
@@ -157,7 +174,7 @@ def _prefect_run(st, inbox: str, profile: str | None, runner: str, dask_address:
         parallel = True
     if runner == "local":
         _warm_backbones(st, inbox, profile)
-    return fl(inbox=str(Path(inbox).resolve()), store=str(st.root), profile_path=profile, parallel=parallel,
+    return fl(inbox=inbox, store=str(st.root), profile_path=profile, parallel=parallel,
               progress=progress, rebuild=list(rebuild))
 
 
@@ -173,7 +190,9 @@ def _warm_backbones(st, inbox: str, profile: str | None) -> None:
 
     def load() -> None:
         try:
-            fleet = night.fleet_profile(Path(inbox).resolve(), profile)
+            from fleetsift.location import resolved
+
+            fleet = night.fleet_profile(resolved(inbox, st.storage), profile)
             for stream in fleet.video_streams():
                 if stream.precision == "float32":  # int8 calibrates on the fleet's frames: left to the task
                     stages._backbone(stream, st)

@@ -9,8 +9,21 @@ import os
 from pathlib import Path
 
 
+def local_state(store_root: str | Path) -> Path:
+    """The local folder for a run's process state: inside a local store; for a store on object storage, a folder
+    of the machine's temporary directory named after the store's URL (Prefect's SQLite database cannot live in a
+    bucket, and only the store's data belongs there)."""
+    s = str(store_root)
+    if "://" in s and not s.startswith("file://"):
+        import hashlib
+        import tempfile
+
+        return Path(tempfile.gettempdir()) / f"fleetsift-{hashlib.sha256(s.encode()).hexdigest()[:12]}"
+    return Path(s.removeprefix("file://")).resolve()
+
+
 def configure(store_root: str | Path) -> None:
-    root = Path(store_root).resolve()
+    root = local_state(store_root)
     home = root / "prefect"
     home.mkdir(parents=True, exist_ok=True)
     defaults = {

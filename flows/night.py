@@ -18,6 +18,7 @@ from typing import Any, Callable
 
 from fleetsift import __version__
 from fleetsift.errors import InputError
+from fleetsift.location import ObjectPath, resolved
 from fleetsift.profile import PROFILE_NAME, Profile, load_profile, profile_for
 from fleetsift.store import Store
 from fleetsift.tasks import stages
@@ -38,14 +39,14 @@ CACHED_ONLY = Steps(tables=partial(stages.run_tables, cached_only=True),
                     embed=partial(stages.run_embed, cached_only=True), score=stages.run_score, write=stages.run_write)
 
 
-def _is_store(p: Path) -> bool:
+def _is_store(p: "Path | ObjectPath") -> bool:
     # A store inside the inbox has its cache folders (Store.init) before its first table exists, so the runs
     # table alone would not reveal it on the first night.
     return ((p / "_delta_log").exists() or (p / "runs" / "_delta_log").exists() or (p / ".lock").exists()
             or ((p / "cache" / "tables").is_dir() and (p / "baselines").is_dir()))
 
 
-def discover(inbox: Path) -> list[Path]:
+def discover(inbox: "Path | ObjectPath") -> list["Path | ObjectPath"]:
     """Every sub-folder of the inbox is a recording (hidden ones and the store, if inside, are skipped)."""
     if not inbox.is_dir():
         raise InputError(inbox, "inbox", "a folder of recording folders", "no such folder")
@@ -57,7 +58,7 @@ def new_run_id() -> str:
     return datetime.now(timezone.utc).strftime("%Y%m%dT%H%M%SZ") + "-" + uuid.uuid4().hex[:6]
 
 
-def fleet_profile(inbox: Path, profile_path: str | None) -> Profile:
+def fleet_profile(inbox: "Path | ObjectPath", profile_path: str | None) -> Profile:
     if profile_path:
         return load_profile(profile_path)
     return load_profile(inbox / PROFILE_NAME)
@@ -101,7 +102,8 @@ def prepare_recordings(tables: Callable[..., dict], embed: Callable[..., dict], 
             continue
         # Windowing, descriptor and scoring are the fleet's; a recording's own profile may only re-describe streams.
         jobs.append((str(rec), Profile(path=prof.path, streams=prof.streams, windowing=fleet.windowing,
-                                       descriptor=fleet.descriptor, scoring=fleet.scoring, baseline=fleet.baseline)))
+                                       descriptor=fleet.descriptor, scoring=fleet.scoring, baseline=fleet.baseline,
+                                       storage=fleet.storage)))
 
     if parallel:
         tab_f = [tables.submit(r, p, store, force=force_tables) for r, p in jobs]
@@ -151,7 +153,7 @@ def run_night(steps: Steps, inbox: str, store: str, profile_path: str | None = N
     started = time.time()
     run_id = run_id or new_run_id()
     st = Store(store).init()
-    inbox_p = Path(inbox).resolve()
+    inbox_p = resolved(inbox)
     fleet = fleet_profile(inbox_p, profile_path)
     force = rebuild_plan(fleet, tuple(rebuild))
     recs = discover(inbox_p)

@@ -19,6 +19,7 @@ import numpy as np
 import pandas as pd
 
 from fleetsift import __version__
+from fleetsift.location import ObjectPath, location, write_atomic
 from fleetsift.store import Store
 from fleetsift.safety import SAFETY_NOTE
 
@@ -190,7 +191,7 @@ def _source(rec_path: str, fleet_profile):
     from fleetsift.errors import InputError
     from fleetsift.profile import profile_for
 
-    p = Path(rec_path) if rec_path else None
+    p = location(rec_path) if rec_path else None
     if p is None or not p.is_dir():
         return None, f"recording folder {rec_path or '(unknown)'} is gone: no thumbnails or traces"
     try:
@@ -312,7 +313,7 @@ def _fleet_profile(run, profile: str | None):
     from fleetsift.errors import InputError
     from fleetsift.profile import PROFILE_NAME, load_profile
 
-    path = Path(profile) if profile else (Path(str(run["inbox"])) / PROFILE_NAME if run["inbox"] else None)
+    path = location(profile) if profile else (location(str(run["inbox"])) / PROFILE_NAME if run["inbox"] else None)
     if path is None or not path.exists():
         return None, f"profile {path} not found"
     try:
@@ -414,8 +415,11 @@ def _body_key(w: pd.DataFrame, recs: pd.DataFrame, fleet_prof, prof_note: str, t
     h.update(pd.util.hash_pandas_object(recs[rcols].astype(str), index=False).values.tobytes())
     own = []
     for pth in recs.get("path", pd.Series(dtype=str)).astype(str):
-        f = Path(pth) / "profile.toml" if pth else None
-        own.append(f"{f.stat().st_mtime_ns}:{f.stat().st_size}" if f is not None and f.is_file() else "")
+        f = location(pth) / "profile.toml" if pth else None
+        if isinstance(f, ObjectPath):
+            own.append(f.signature() if f.is_file() else "")
+        else:
+            own.append(f"{f.stat().st_mtime_ns}:{f.stat().st_size}" if f is not None and f.is_file() else "")
     h.update(repr((fleet_prof.digest() if fleet_prof is not None else None, prof_note, int(top_n), own,
                    sorted((verdicts or {}).items()))).encode())
     return h.hexdigest()[:24]
@@ -447,7 +451,7 @@ def write_report(store: str, run_id: str | None, out: str, as_of: int | None = N
     fleet_prof, prof_note = _fleet_profile(run, profile)
     verdicts = window_verdicts(st, prim, recs)
 
-    paths = {r.recording_id: (r.path or (str(Path(str(run["inbox"])) / r.recording_id) if run["inbox"] else ""))
+    paths = {r.recording_id: (r.path or (str(location(str(run["inbox"])) / r.recording_id) if run["inbox"] else ""))
              for r in recs.itertuples()}
     sources: dict[str, tuple] = {}
 
@@ -585,10 +589,7 @@ def write_report(store: str, run_id: str | None, out: str, as_of: int | None = N
             parts.append(f"<h3 id='{_anchor(rid)}'>{_e(rid)}</h3><img alt='score timeline {_e(rid)}' "
                          f"src='{timeline_png(g, thr, marks)}'>")
 
-        body_path.parent.mkdir(parents=True, exist_ok=True)
-        tmp = body_path.with_suffix(".html.tmp")
-        tmp.write_text("".join(parts[start:]), encoding="utf-8")
-        tmp.replace(body_path)
+        write_atomic(body_path, "".join(parts[start:]).encode("utf-8"))
 
     parts.append(
         "<h2>How to read this report</h2><p>Each window of the common clock is described, stream by stream, by an "
@@ -608,8 +609,5 @@ def write_report(store: str, run_id: str | None, out: str, as_of: int | None = N
            "<meta name='viewport' content='width=device-width,initial-scale=1'>"
            f"<title>fleetsift report {_e(run_id)}</title><style>{CSS}</style></head><body>{''.join(parts)}"
            "</body></html>")
-    Path(out).parent.mkdir(parents=True, exist_ok=True)
-    tmp = Path(out).with_suffix(".html.tmp")
-    tmp.write_text(doc, encoding="utf-8")
-    tmp.replace(out)
+    write_atomic(location(out), doc.encode("utf-8"))
     return str(out)

@@ -23,6 +23,7 @@ import pandas as pd
 from fleetsift import codebase
 from fleetsift.errors import InputError
 from fleetsift.profile import Profile, VideoStream
+from fleetsift.location import ObjectPath, location, read_parquet, write_atomic
 from fleetsift.store import Store, code_version, stage_key
 from fleetsift.vocabulary import METRICS
 from fleetsift.featurizers import recording, video, weights
@@ -94,8 +95,8 @@ def quarantined(rec_id: str, reason: str, **extra) -> dict:
 def run_tables(rec_dir: str, profile: Profile, store_root: str, cached_only: bool = False, force: bool = False) -> dict:
     """Table streams -> calibrated, resampled common clock (one .npz per recording); `force` recomputes and
     overwrites a cached output."""
-    store = Store(store_root)
-    rec_dir = Path(rec_dir)
+    store = Store(store_root, profile.storage)
+    rec_dir = location(rec_dir, profile.storage)
     rec_id = rec_dir.name
     try:
         streams = profile.table_streams()
@@ -148,6 +149,10 @@ def _frames(path: Path, stream: VideoStream, stats: dict | None = None):
     if stream.topic:
         from fleetsift.featurizers import logs
 
+        if isinstance(path, ObjectPath):
+            raise InputError(path, f"streams.{stream.name}.file", "a video file on object storage (ROS 2 bags are "
+                             "read from local folders only)", "a bag")
+
         return logs.iter_bag_images(path, stream.topic, stream.sample_hz, stamp=stream.stamp)
     # One decoder thread: decoding runs in its own thread beside the model's `threads` (embed_frames' prefetch).
     return video.iter_frames(path, stream.sample_hz, threads=1, stats=stats)
@@ -170,8 +175,8 @@ def run_embed(rec_dir: str, profile: Profile, store_root: str, progress: bool = 
     written as the batches come: memory stays flat in the video's length); streams named in `force_streams`
     are recomputed even when cached. The output counts the frames embedded and skipped (`skip_threshold`) and
     the damaged spans decoding resumed after."""
-    store = Store(store_root)
-    rec_dir = Path(rec_dir)
+    store = Store(store_root, profile.storage)
+    rec_dir = location(rec_dir, profile.storage)
     rec_id = rec_dir.name
     outputs = {}
     reused = computed = 0
@@ -373,10 +378,10 @@ def run_score(prepared: list[dict], profile: Profile, store_root: str, run_id: s
     """Score every window against the fleet's baseline (earlier nights' windows, or the batch on a first night);
     writes the run's window rows to a staging Parquet and tonight's bank (descriptors, admission, descriptor
     space) next to it, which later nights take their references from."""
-    store = Store(store_root)
+    store = Store(store_root, profile.storage)
     # Recording ids and the inputs' cache keys (file names, not paths: a store moved or copied keeps its scores).
-    keys = [[p["tables"]["recording_id"], Path(p["tables"]["path"]).name,
-             sorted(Path(x).name for x in p["embed"].get("paths", {}).values())] for p in prepared]
+    keys = [[p["tables"]["recording_id"], location(p["tables"]["path"]).name,
+             sorted(location(x).name for x in p["embed"].get("paths", {}).values())] for p in prepared]
     section = {k: profile.section(k) for k in ("windowing", "descriptor", "scoring", "baseline")}
     section["pca"] = {s.name: s.pca_dim for s in profile.video_streams()}
     section["offsets"] = {s.name: s.clock_offset_s for s in profile.video_streams()}
@@ -417,24 +422,20 @@ def run_score(prepared: list[dict], profile: Profile, store_root: str, run_id: s
     out.parent.mkdir(parents=True, exist_ok=True)
     store.save_arrays(bank_path, **res.bank.to_arrays(), **bl.space.to_arrays(),
                       **{f"groups.{b}": g for b, g in res.groups.items()})
-    tmp = out.with_suffix(".tmp")
-    df.to_parquet(tmp, index=False)
-    tmp.replace(out)
+    write_atomic(out, df.to_parquet(index=False))
     meta = {"baseline_id": bl.baseline_id, "channels": res.channels, "thresholds": {m: c for m in fleet.METRICS},
             "baseline": bl.info.to_dict(), "space_key": skey,
             "score_output": str(bank_path.relative_to(store.root))}
-    tmp = out.with_suffix(".json.tmp")
-    tmp.write_text(json.dumps(meta))
-    tmp.replace(out.with_suffix(".json"))
+    write_atomic(out.with_suffix(".json"), json.dumps(meta).encode())
     return {"path": str(out), "reused": False, **meta}
 
 
 def run_write(store_root: str, run_id: str, started_at: float, profile: Profile, code_ver: str,
               rec_rows: list[dict], score: dict | None, inbox: str = "") -> dict:
     """Append the run to the Delta tables: recordings, then windows, then runs (the run's commit marker)."""
-    store = Store(store_root)
+    store = Store(store_root, profile.storage)
     rec_df = pd.DataFrame(rec_rows, columns=["recording_id", "content_hash", "duration_s", "status", "reason"])
-    rec_df["path"] = [str(Path(inbox) / r) if inbox else "" for r in rec_df["recording_id"]]
+    rec_df["path"] = [str(location(inbox) / r) if inbox else "" for r in rec_df["recording_id"]]
     rec_df.insert(0, "run_id", run_id)
     store.append("recordings", rec_df)
     n_windows = n_flagged = 0
@@ -444,7 +445,7 @@ def run_write(store_root: str, run_id: str, started_at: float, profile: Profile,
         extra = {"baseline_source": score.get("baseline", {}).get("source", ""),
                  "n_references": score.get("baseline", {}).get("n_references"),
                  "space_key": score.get("space_key", ""), "score_output": score.get("score_output", "")}
-        w = pd.read_parquet(score["path"])
+        w = read_parquet(score["path"])
         w.insert(0, "run_id", run_id)
         w["baseline_id"] = score["baseline_id"]
         baseline_id = score["baseline_id"]
