@@ -33,6 +33,7 @@ import pyarrow as pa
 
 from fleetsift import __version__, codebase
 from fleetsift.errors import StoreLockedError
+from fleetsift.vocabulary import LEGACY_STATUSES
 
 TABLE_SCHEMAS: dict[str, pa.Schema] = {
     "runs": pa.schema([
@@ -44,7 +45,7 @@ TABLE_SCHEMAS: dict[str, pa.Schema] = {
         ("baseline_id", pa.string()),
         ("n_recordings", pa.int64()),
         ("n_scored", pa.int64()),
-        ("n_quarantined", pa.int64()),
+        ("n_unscored", pa.int64()),
         ("n_windows", pa.int64()),
         ("n_flagged", pa.int64()),
         ("status", pa.string()),
@@ -297,6 +298,11 @@ class Store:
         for f in TABLE_SCHEMAS[table]:  # a version written before a column was added
             if f.name not in df.columns:
                 df[f.name] = None
+        # Stores written before 0.3 said "quarantined" for an unscored recording.
+        if "n_quarantined" in df.columns:
+            df["n_unscored"] = df["n_unscored"].fillna(df.pop("n_quarantined"))
+        if "status" in df.columns:
+            df["status"] = df["status"].replace(LEGACY_STATUSES)
         return df
 
     def run_ids(self, table: str) -> set[str]:
@@ -336,7 +342,7 @@ class Store:
         """One row per run with the `runs` table version that committed it (for --as-of)."""
         from deltalake import DeltaTable
 
-        cols = ["version", "run_id", "finished_at", "n_recordings", "n_windows", "n_flagged", "n_quarantined",
+        cols = ["version", "run_id", "finished_at", "n_recordings", "n_windows", "n_flagged", "n_unscored",
                 "status", "baseline_id"]
         path = self.table_path("runs")
         if not (path / "_delta_log").exists():

@@ -27,3 +27,15 @@ KNN_UNITS = ("recording", "window")
 BASELINE_SOURCES = ("history", "batch", "recordings")
 # An engineer's verdict on a window or a recording.
 VERDICTS = ("normal", "fault")
+
+# Status words, one vocabulary for recordings, stages and runs. A recording is `scored`, or `unscored` with the
+# reason (it could not be read or scored; nothing is implied about the vehicle). A stage's result for a recording
+# is `ok` or `unscored` (the stage failed on it, so it cannot be scored tonight). A run is `ok` when every
+# recording was scored, `partial` when some were left unscored. A window that cannot be scored (it straddles a gap)
+# is an unscored window: its score is empty.
+SCORED, UNSCORED, OK, PARTIAL = "scored", "unscored", "ok", "partial"
+RECORDING_STATUSES = (SCORED, UNSCORED)
+STAGE_STATUSES = (OK, UNSCORED)
+RUN_STATUSES = (OK, PARTIAL)
+# Read from stores written before 0.3, which called an unscored recording "quarantined".
+LEGACY_STATUSES = {"quarantined": UNSCORED}

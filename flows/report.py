@@ -1,7 +1,7 @@
 """A self-contained HTML report of one run: one file, every image embedded as a data URI, no script, no link out.
 
 Contents: the run and the safety note; the fleet at a glance (recordings, status, flagged windows and spans,
-highest scores, quarantine reasons); the top-N flagged windows, each with video thumbnails from the window, the
+highest scores, why a recording was left unscored); the top-N flagged windows, each with video thumbnails from the window, the
 table-stream traces around it and the channels that drive its deviation; and a score timeline per recording with
 the threshold and the flagged spans. Thumbnails and traces are read from the recording folders named in the store
 (`recordings.path`, else `runs.inbox`); a folder that is gone is noted, not an error.
@@ -21,11 +21,41 @@ import pandas as pd
 from fleetsift import __version__
 from fleetsift.store import Store
 from fleetsift.safety import SAFETY_NOTE
+from fleetsift.vocabulary import SCORED, UNSCORED
 
 TOP_N = 10
 THUMB_W = 176  # px; three JPEG thumbnails per window stay ~15 KB
 PLOT_DPI = 90
 ACCENT, INK, MUTED = "#b7472a", "#24425f", "#8aa1b4"
+# Line colours of every plot fleetsift draws (report, ROC curves, sweep), in order: the report's palette, not
+# Matplotlib's defaults.
+PALETTE = (INK, ACCENT, "#3f8f6b", "#d08c2c", "#6b4f9e", MUTED, "#526170")
+
+
+def iso_time(t) -> str:
+    """A timestamp as ISO 8601 to the second, in UTC (``2026-12-03T02:00:07Z``); '-' when missing."""
+    if t is None or (not isinstance(t, str) and pd.isna(t)):
+        return "-"
+    ts = pd.Timestamp(t)
+    ts = ts.tz_localize("UTC") if ts.tzinfo is None else ts.tz_convert("UTC")
+    return ts.strftime("%Y-%m-%dT%H:%M:%SZ")
+
+
+def score_axis_label(metric: str, scoring=None) -> str:
+    """What a score axis shows: the robust z of which distance, by which statistic."""
+    if scoring is None:
+        return f"robust z of the {metric} distance"
+    stat = {"knn": f"{'k-th' if scoring.knn_stat == 'kth' else 'mean of k'} nearest (k = {scoring.k})",
+            "density": f"local outlier factor (k = {scoring.k})",
+            "mean": "to the Fréchet mean"}.get(scoring.method, scoring.method)
+    return f"robust z of the {metric} distance, {stat}"
+
+
+THRESHOLD_TEXT = ("A window's score is a robust z: (distance - median) / robust sigma of the references' own "
+                  "leave-one-out distances, robust sigma = 1.4826 x MAD (the median absolute deviation, scaled "
+                  "to the standard deviation of normal data). A window is flagged when its score exceeds c, "
+                  "i.e. its distance exceeds median + c x robust sigma; c = 3 is about three standard deviations "
+                  "beyond typical normal operation.")
 
 
 # ------------------------------------------------------------------------------------------------ encoding
@@ -201,8 +231,8 @@ def _source(rec_path: str, fleet_profile):
 
 # ---------------------------------------------------------------------------------------------- figures
 
-def timeline_png(g: pd.DataFrame, threshold: float, marks: dict[int, int]) -> str:
-    """Score against time with the threshold, flagged spans shaded, invalid windows ticked, top windows numbered."""
+def timeline_png(g: pd.DataFrame, threshold: float, marks: dict[int, int], ylabel: str = "score") -> str:
+    """Score against time with the threshold, flagged spans shaded, unscored windows ticked, top windows numbered."""
     plt = _mpl()
     fig, ax = plt.subplots(figsize=(9.0, 2.1))
     ok = g[g["score"].notna()]
@@ -210,12 +240,12 @@ def timeline_png(g: pd.DataFrame, threshold: float, marks: dict[int, int]) -> st
     for s, e in flagged_spans(ok):
         ax.axvspan(s, e, color=ACCENT, alpha=0.16, lw=0)
     ax.plot(c, ok["score"], color=INK, lw=1.1, marker=".", ms=3, label="window score")
-    ax.axhline(threshold, color=ACCENT, ls="--", lw=1, label=f"threshold {threshold:.3g}")
+    ax.axhline(threshold, color=ACCENT, ls="--", lw=1, label=f"threshold c = {threshold:.3g}")
     bad = g[g["score"].isna()]
     if len(bad):
         y0 = float(ok["score"].min()) if len(ok) else 0.0
         ax.plot((bad["t_start_s"] + bad["t_end_s"]) / 2, np.full(len(bad), y0), "|", color=MUTED, ms=8,
-                label="invalid (gap)")
+                label="unscored (gap)")
     by_idx = ok.set_index("window_index")
     for widx, rank in marks.items():
         if widx in by_idx.index:
@@ -223,7 +253,7 @@ def timeline_png(g: pd.DataFrame, threshold: float, marks: dict[int, int]) -> st
             ax.annotate(str(rank), ((r["t_start_s"] + r["t_end_s"]) / 2, r["score"]), xytext=(0, 5),
                         textcoords="offset points", ha="center", fontsize=7, color=ACCENT, weight="bold")
     ax.set_xlabel("seconds from the recording's first sample", fontsize=8)
-    ax.set_ylabel("score", fontsize=8)
+    ax.set_ylabel(ylabel, fontsize=7)
     ax.tick_params(labelsize=7)
     ax.margins(x=0.01, y=0.18)
     ax.legend(loc="lower right", bbox_to_anchor=(1.0, 1.0), fontsize=7, ncol=3, frameon=False, borderaxespad=0.1)
@@ -286,7 +316,7 @@ h3{font-size:1em;margin:.2em 0 .4em}
 .tile b{display:block;font-size:1.35em}
 table{border-collapse:collapse;width:100%;font-size:.9em}th,td{border-bottom:1px solid #dfe5eb;padding:3px 6px;
 text-align:left;vertical-align:top}th{background:#f2f5f8}td.n{text-align:right;font-variant-numeric:tabular-nums}
-tr.quarantined td{background:#fdf0ee}
+tr.unscored td{background:#fdf0ee}
 .card{border:1px solid #d8e0e8;border-radius:8px;padding:.6em .8em;margin:.8em 0;break-inside:avoid}
 .rank{display:inline-block;background:#b7472a;color:#fff;border-radius:4px;padding:0 .45em;margin-right:.4em}
 .row{display:flex;gap:1em;flex-wrap:wrap;align-items:flex-start}
@@ -348,7 +378,7 @@ def window_verdicts(st: Store, prim: pd.DataFrame, recs: pd.DataFrame) -> dict[t
         for r in prim[hit].itertuples():
             out[(r.recording_id, int(r.window_index))] = {"verdict": row["verdict"], "note": row["note"] or "",
                                                           "reviewer": row["reviewer"] or "",
-                                                          "reviewed_at": str(row["reviewed_at"])[:19]}
+                                                          "reviewed_at": iso_time(row["reviewed_at"])}
     return out
 
 
@@ -416,22 +446,37 @@ def _body_key(w: pd.DataFrame, recs: pd.DataFrame, fleet_prof, prof_note: str, t
     return h.hexdigest()[:24]
 
 
+def _settings_html(prof, metric: str, thresholds: dict) -> str:
+    """The values the scores depend on, printed (not only the profile's hash)."""
+    c = ", ".join(sorted({f"{v:g}" for v in thresholds.values()})) or "-"
+    if prof is None:
+        return f"<p class='meta' id='settings'>Settings: metric {_e(metric)}, c = {c} (profile not found).</p>"
+    w, sc, d = prof.windowing, prof.scoring, prof.descriptor
+    items = [("window", f"{w.window_s:g} s"), ("hop", f"{w.hop_s:g} s"), ("clock", f"{w.rate_hz:g} Hz"),
+             ("metric", metric), ("method", sc.method), ("k", sc.k), ("knn_stat", sc.knn_stat),
+             ("c", c), ("descriptor", d.kind)]
+    return ("<p class='meta' id='settings'>Settings: "
+            + ", ".join(f"{_e(k)} <b data-setting='{_e(k)}'>{_e(v)}</b>" for k, v in items) + ".</p>")
+
+
 def write_report(store: str, run_id: str | None, out: str, as_of: int | None = None, top_n: int = TOP_N,
                  profile: str | None = None) -> str:
     """Write the HTML report of ``run_id`` (default: the latest run at ``as_of``) to ``out``; returns the path.
 
-    ``as_of`` is a `runs` table version (time travel); ``profile`` overrides the inbox's profile.toml for reading
+    ``as_of`` is a `runs` table version (time travel, as `fleetsift history` lists it); ``profile`` overrides the inbox's profile.toml for reading
     thumbnails and traces.
     """
+    from fleetsift.errors import InputError
+
     st = Store(store)
     runs = st.read("runs", version=as_of)
     if runs.empty:
-        raise ValueError(f"{store}: no runs in the store")
+        raise InputError(store, "runs", "a store with committed runs", "none")
     if run_id is None:
         run_id = runs.sort_values("finished_at")["run_id"].iloc[-1]
     sel = runs[runs["run_id"] == run_id]
     if sel.empty:
-        raise ValueError(f"{store}: no run {run_id!r}")
+        raise InputError(store, "--run", "a run id of the store (see `fleetsift history`)", run_id)
     run = sel.iloc[0]
     recs = st.read("recordings", run_id=run_id).sort_values("recording_id")
     w = st.read("windows", run_id=run_id)
@@ -457,23 +502,23 @@ def write_report(store: str, run_id: str | None, out: str, as_of: int | None = N
 
     # --- header and fleet summary
     n_flag = int(valid["flagged"].sum())
-    n_q = int((recs["status"] == "quarantined").sum())
+    n_q = int((recs["status"] == UNSCORED).sum())
     parts = [
         "<h1>fleetsift screening report</h1>",
-        f"<p class='meta'>Run <code>{_e(run_id)}</code> &middot; finished {_e(run['finished_at'])} &middot; "
+        f"<p class='meta'>Run <code>{_e(run_id)}</code> &middot; finished {_e(iso_time(run['finished_at']))} &middot; "
         f"baseline <code>{_e(run['baseline_id'])}</code> &middot; primary metric <b>{_e(metric)}</b> &middot; "
         f"profile <code>{_e(run['profile_hash'])}</code> &middot; fleetsift {_e(run['code_version'])}"
-        + (f" &middot; store version {as_of}" if as_of is not None else "") + "</p>",
+        + (f" &middot; runs-table version {as_of}" if as_of is not None else "") + "</p>",
+        _settings_html(fleet_prof, metric, thresholds),
         f"<p class='safety'><b>Safety note.</b> {_e(SAFETY_NOTE)}</p>",
         "<div class='tiles'>"
         + "".join(f"<div class='tile'><b>{v}</b>{_e(k)}</div>" for k, v in (
-            ("recordings", len(recs)), ("scored", int((recs["status"] == "scored").sum())), ("quarantined", n_q),
+            ("recordings", len(recs)), ("scored", int((recs["status"] == SCORED).sum())), ("unscored", n_q),
             ("windows scored", len(valid)), ("windows flagged", n_flag),
             ("flagged spans", sum(len(flagged_spans(g)) for _, g in valid.groupby("recording_id")))))
         + "</div>",
-        "<p class='meta'>Scores are robust z-scores: (distance - median) / (1.4826 &times; MAD) of the "
-        "references' own leave-one-out distances, so 3 is about three standard deviations beyond typical normal "
-        "operation. Flagged above c = " + ", ".join(sorted({f"{v:g}" for v in thresholds.values()})) + ".</p>",
+        f"<p class='meta' id='threshold'>{_e(THRESHOLD_TEXT)} This run: c = "
+        + ", ".join(sorted({f"{v:g}" for v in thresholds.values()})) + ".</p>",
         _references_html(st, run),
     ]
     if prof_note:
@@ -495,11 +540,12 @@ def write_report(store: str, run_id: str | None, out: str, as_of: int | None = N
             f"<td class='n'>{len(gall) - len(g)}</td><td class='n flagged'>{int(g['flagged'].sum())}</td>"
             f"<td class='n'>{len(flagged_spans(g))}</td><td>{top_s}</td><td>{_e(r.reason or '')}</td></tr>")
     parts.append("<h2>Recordings</h2><table id='fleet'><tr><th>recording</th><th>status</th><th>seconds</th>"
-                 "<th>windows</th><th>invalid</th><th>flagged</th><th>spans</th><th>highest score</th>"
+                 "<th>windows</th><th>unscored windows</th><th>flagged</th><th>spans</th><th>highest score</th>"
                  "<th>reason</th></tr>" + "".join(rows) + "</table>")
-    quar = recs[recs["status"] == "quarantined"]
+    quar = recs[recs["status"] == UNSCORED]
     if len(quar):
-        parts.append("<h2>Quarantined recordings</h2><p>Not scored; fix the input and the next run picks them up."
+        parts.append("<h2>Unscored recordings</h2><p>These could not be read or scored (nothing is said about the "
+                     "vehicle); fix the input and the next run picks them up."
                      "</p><ul>" + "".join(f"<li><b>{_e(r.recording_id)}</b>: {_e(r.reason)}</li>"
                                           for r in quar.itertuples()) + "</ul>")
 
@@ -571,6 +617,7 @@ def write_report(store: str, run_id: str | None, out: str, as_of: int | None = N
         parts.append("<h2>Score timelines</h2><p>One point per window at its centre; shaded: flagged spans; dashed: "
                      "threshold; numbers: the windows above; ticks at the bottom: windows left unscored because they "
                      "straddle a gap.</p>")
+        ylabel = score_axis_label(metric, fleet_prof.scoring if fleet_prof is not None else None)
         for rid, g in prim.groupby("recording_id"):
             g = g.sort_values("window_index")
             if not g["score"].notna().any():
@@ -578,7 +625,7 @@ def write_report(store: str, run_id: str | None, out: str, as_of: int | None = N
             marks = {int(widx): rk for (rr, widx), rk in rank_of.items() if rr == rid}
             thr = float(g["threshold"].iloc[0])
             parts.append(f"<h3 id='{_anchor(rid)}'>{_e(rid)}</h3><img alt='score timeline {_e(rid)}' "
-                         f"src='{timeline_png(g, thr, marks)}'>")
+                         f"src='{timeline_png(g, thr, marks, ylabel)}'>")
 
         body_path.parent.mkdir(parents=True, exist_ok=True)
         tmp = body_path.with_suffix(".html.tmp")
@@ -592,9 +639,14 @@ def write_report(store: str, run_id: str | None, out: str, as_of: int | None = N
         "a behaviour counts as normal only where k recordings show it, and never a neighbour from the window's "
         "own recording within the exclusion zone. From the second night on the references are earlier nights' "
         "windows that were clearly normal, so a fault that recurs tonight is measured against last week's "
-        "operation. The score is the largest robust z over the streams; a window is flagged above c. The driving "
+        "operation. The score is the largest robust z over the streams; a window is flagged when it exceeds c (its "
+        "distance exceeds median + c &times; robust sigma, robust sigma = 1.4826 &times; MAD). The driving "
         "channels split the window's deviation by channel (the energy of each channel's rows of the whitened log "
-        "map). A high score says <i>unlike the baseline</i>, not <i>faulty</i>. Record a verdict with "
+        "map). A video stream's channels are named after it: <code>camera.pc1</code> .. <code>camera.pcN</code> are "
+        "the principal components of the frame embeddings (the PCA basis fitted on the baseline), and "
+        "<code>camera.residual</code> is the PCA residual, the part of the embedding the N components leave "
+        "unexplained (the log of its squared norm, the Q statistic of Jackson &amp; Mudholkar 1979), so a view unlike any "
+        "in the baseline still counts. A high score says <i>unlike the baseline</i>, not <i>faulty</i>. Record a verdict with "
         "<code>fleetsift review --store STORE --run RUN --window RECORDING:INDEX --verdict normal|fault</code>: "
         "a window reviewed normal joins the references and is not flagged again; one reviewed as a fault never "
         "joins them.</p>"

@@ -187,6 +187,8 @@ def plot_sweep(table: pd.DataFrame, base: dict, path: str) -> None:
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
 
+    from fleetsift.flows.report import ACCENT, INK, MUTED
+
     full = (table["varied"] == "all").any()
     shown = [p for p in PARAMS if (table[p].nunique() > 1 if full else (table["varied"] == p).any())] or ["k"]
     fig, axes = plt.subplots(1, len(shown), figsize=(2.3 * len(shown) + 0.6, 2.6), sharey=True, squeeze=False)
@@ -199,16 +201,16 @@ def plot_sweep(table: pd.DataFrame, base: dict, path: str) -> None:
         if full and len(ok):
             x = x + np.random.default_rng(0).uniform(-0.12, 0.12, len(x))
             means = ok.groupby(p)["auc"].mean()
-            ax.plot([xpos[v] for v in means.index], means.to_numpy(), color="#444", lw=1, zorder=3)
+            ax.plot([xpos[v] for v in means.index], means.to_numpy(), color=MUTED, lw=1, zorder=3)
         ax.errorbar(x, ok["auc"].to_numpy(float), yerr=ok["auc_se"].to_numpy(float), fmt="o", ms=4,
-                    color="#2b6cb0", ecolor="#90cdf4", capsize=2, lw=1)
+                    color=INK, ecolor=MUTED, capsize=2, lw=1)
         if not full:
             b = ok[ok["varied"] == "base"]
-            ax.plot(b[p].map(xpos), b["auc"], "o", ms=8, mfc="none", mec="#c05621", label="profile")
+            ax.plot(b[p].map(xpos), b["auc"], "o", ms=8, mfc="none", mec=ACCENT, label="profile")
         ax.set_xticks(range(len(vals)), [f"{v:g}" if isinstance(v, float) else str(v) for v in vals],
                       fontsize=7, rotation=30 if p in ("kind", "metric") else 0)
         ax.set_title(p, fontsize=9)
-        ax.axhline(0.5, color="grey", lw=0.6, ls=":")
+        ax.axhline(0.5, color=MUTED, lw=0.6, ls=":")
         ax.set_xlim(-0.5, len(vals) - 0.5)
     axes[0, 0].set_ylabel("ROC AUC")
     if not full:

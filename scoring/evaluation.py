@@ -105,7 +105,7 @@ def tangent_vectors(descriptors: np.ndarray, mean: np.ndarray) -> np.ndarray:
     return geometry.vec(geometry.logm(W @ np.asarray(descriptors, np.float64) @ W))
 
 
-def outlier_baselines(features: np.ndarray, seed: int = 0, n_neighbors: int = 20) -> dict[str, np.ndarray]:
+def comparison_scores(features: np.ndarray, seed: int = 0, n_neighbors: int = 20) -> dict[str, np.ndarray]:
     """Scores (higher = more unusual) of scikit-learn's IsolationForest (Liu et al. 2008) and LocalOutlierFactor
     (Breunig et al. 2000, novelty=False) fitted on all windows, the same unsupervised setting as ours.
 
@@ -117,7 +117,7 @@ def outlier_baselines(features: np.ndarray, seed: int = 0, n_neighbors: int = 20
 
     X = np.asarray(features, np.float64)
     if len(X) < 3:
-        raise ValueError(f"{len(X)} windows: too few for the outlier baselines")
+        raise ValueError(f"{len(X)} windows: too few for the comparison detectors")
     iso = IsolationForest(n_estimators=200, random_state=seed).fit(X)
     lof = LocalOutlierFactor(n_neighbors=min(n_neighbors, len(X) - 1), novelty=False).fit(X)
     return {"isolation_forest": -iso.score_samples(X), "local_outlier_factor": -lof.negative_outlier_factor_}

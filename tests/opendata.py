@@ -283,7 +283,7 @@ def score_nights(nights: list[Night], store: str | Path, comparison: bool = True
     out = []
     for n in nights:
         res = night_flow.run_night(plain, inbox=str(n.inbox), store=str(store), progress=False)
-        ev = evaluate_store(str(store), res["run_id"], str(n.labels), baselines=comparison)
+        ev = evaluate_store(str(store), res["run_id"], str(n.labels), comparison=comparison)
         ev["baseline"] = res["score"]["baseline"]
         out.append(ev)
     return out

@@ -14,7 +14,7 @@ from inboxes import table_inbox  # tests/ is on sys.path under pytest
 
 from fleetsift.scoring import baseline as scoring
 from fleetsift.scoring import fleet
-from fleetsift.scoring.evaluation import (hanley_mcneil_se, label_windows, outlier_baselines, read_labels,
+from fleetsift.scoring.evaluation import (hanley_mcneil_se, label_windows, comparison_scores, read_labels,
                                           roc_auc, roc_curve, tangent_vectors)
 from fleetsift.errors import InputError
 from fleetsift.profile import Descriptor, Profile, Scoring, TableStream, Windowing
@@ -111,16 +111,16 @@ def test_tangent_vectors_match_pyriemann():
     np.testing.assert_allclose(np.linalg.norm(T, axis=1), np.ravel(distance_riemann(X, M)), rtol=1e-10)
 
 
-def test_outlier_baselines_find_planted_outliers():
+def test_comparison_scores_find_planted_outliers():
     rng = np.random.default_rng(2)
     X = np.r_[rng.normal(size=(300, 6)), rng.normal(size=(12, 6)) * 0.3 + 6.0]
     y = np.r_[np.zeros(300, bool), np.ones(12, bool)]
-    sc = outlier_baselines(X)
+    sc = comparison_scores(X)
     assert set(sc) == {"isolation_forest", "local_outlier_factor"}
     for name, s in sc.items():
         assert s.shape == (312,) and roc_auc(y, s) > 0.95, name
     with pytest.raises(ValueError):
-        outlier_baselines(X[:2])
+        comparison_scores(X[:2])
 
 
 def _recordings(rng, n_rec=3, seconds=40.0, rate=20.0, burst=None):
@@ -284,8 +284,8 @@ def test_evaluate_cli_contract(evaluated):
 
     inbox, store, base, ev = evaluated
     assert set(ev["auc"]) == {"riemann", "logeuclid", "euclid"}
-    assert set(ev["baselines"]) == {"isolation_forest", "local_outlier_factor"}, ev.get("baselines_note")
-    for v in [*ev["auc"].values(), *ev["baselines"].values()]:
+    assert set(ev["comparison_detectors"]) == {"isolation_forest", "local_outlier_factor"}, ev.get("comparison_detectors_note")
+    for v in [*ev["auc"].values(), *ev["comparison_detectors"].values()]:
         assert 0.0 <= v <= 1.0
     # The counts agree with the store's windows and the labels, computed here independently.
     w = Store(store).read("windows", run_id=ev["run_id"])

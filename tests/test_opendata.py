@@ -107,13 +107,13 @@ def test_basicmotions_detection_through_the_pipeline(tmp_path):
     f = opendata.build_fleet(tmp_path / "inbox", seed=0)
     store = tmp_path / "store"
     ev = fleetsift("evaluate", "--inbox", str(f.inbox), "--labels", str(f.labels), "--store", str(store), "--json")
-    print("BasicMotions AUC", json.dumps({**ev["auc"], **ev["baselines"]}))
+    print("BasicMotions AUC", json.dumps({**ev["auc"], **ev["comparison_detectors"]}))
     assert ev["n_windows"] == 139 and ev["n_anomalous"] == 16
     assert ev["auc"]["riemann"] > 0.97
     assert ev["auc"]["logeuclid"] > 0.97
     assert ev["auc"]["euclid"] > 0.95
-    assert ev["baselines"]["isolation_forest"] > 0.9
-    assert 0.0 <= ev["baselines"]["local_outlier_factor"] <= 1.0  # near chance here (0.49): no floor
+    assert ev["comparison_detectors"]["isolation_forest"] > 0.9
+    assert 0.0 <= ev["comparison_detectors"]["local_outlier_factor"] <= 1.0  # near chance here (0.49): no floor
     # The automatic noise floor leaves the result insensitive to a hand-set one; the sweep measures it on the cache.
     grid = tmp_path / "grid.toml"
     grid.write_text("ridge = [1e-2]\n")
