@@ -174,15 +174,18 @@ def _guarded(fn):
         return None, EXIT_ERROR
 
 
-def _existing_store(store: str):
-    """The store at ``store``, or InputError when it holds no committed run (nothing is created)."""
+def _existing_store(store: str, runs: bool = True):
+    """The store at ``store``, or InputError when it holds no committed run (with ``runs=False``: none of the
+    store's tables nor its stage cache). Nothing is created."""
     from fleetsift.errors import InputError
-    from fleetsift.store import Store
+    from fleetsift.store import TABLES, Store
 
     st = Store(store)
-    if not (st.root / "runs" / "_delta_log").exists():
-        raise InputError(st.root, "store", "a results store with committed runs",
-                         "no such folder" if not st.root.exists() else "no runs table")
+    found = (st.root / "runs" / "_delta_log").exists() if runs else (
+        (st.root / "cache").is_dir() or any((st.root / t / "_delta_log").exists() for t in TABLES))
+    if not found:
+        raise InputError(st.root, "store", "a results store with committed runs" if runs else "a results store",
+                         "no such folder" if not st.root.exists() else "no runs table" if runs else "no store")
     return st
 
 
@@ -359,7 +362,7 @@ def cmd_history(a) -> int:
 
 def cmd_maintain(a) -> int:
     def go():
-        st = _existing_store(a.store)
+        st = _existing_store(a.store, runs=False)
         with st.lock(wait_s=a.wait):
             return st.maintain(retention_hours=a.retention_hours)
 

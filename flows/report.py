@@ -21,7 +21,7 @@ import pandas as pd
 from fleetsift import __version__
 from fleetsift.store import Store
 from fleetsift.safety import SAFETY_NOTE
-from fleetsift.vocabulary import SCORED, UNSCORED
+from fleetsift.vocabulary import KNN_STATS, SCORED, SCORING_METHODS, UNSCORED
 
 TOP_N = 10
 THUMB_W = 176  # px; three JPEG thumbnails per window stay ~15 KB
@@ -45,9 +45,9 @@ def score_axis_label(metric: str, scoring=None) -> str:
     """What a score axis shows: the robust z of which distance, by which statistic."""
     if scoring is None:
         return f"robust z of the {metric} distance"
-    stat = {"knn": f"{'k-th' if scoring.knn_stat == 'kth' else 'mean of k'} nearest (k = {scoring.k})",
-            "density": f"local outlier factor (k = {scoring.k})",
-            "mean": "to the Fréchet mean"}.get(scoring.method, scoring.method)
+    stat = dict(zip(SCORING_METHODS, (f"{'k-th' if scoring.knn_stat == KNN_STATS[0] else 'mean of k'} nearest "
+                                      f"(k = {scoring.k})", f"local outlier factor (k = {scoring.k})",
+                                      "to the Fréchet mean"))).get(scoring.method, scoring.method)
     return f"robust z of the {metric} distance, {stat}"
 
 

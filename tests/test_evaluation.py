@@ -231,7 +231,7 @@ def test_score_point_detects_a_planted_burst_and_reports_errors(tmp_path):
 
 # ------------------------------------------------------------------------------------ preparing an inbox
 
-def test_evaluate_quarantines_a_too_short_recording_as_the_night_does(tmp_path):
+def test_evaluate_leaves_a_too_short_recording_unscored_as_the_night_does(tmp_path):
     # One preparation for both: `fleetsift evaluate` must score exactly the recordings a night scores, or its
     # recomputed baseline would differ from the run's. A 3 s recording is shorter than one 4 s window.
     from fleetsift.flows import evaluate, night
@@ -248,7 +248,7 @@ def test_evaluate_quarantines_a_too_short_recording_as_the_night_does(tmp_path):
         os.environ.clear()
         os.environ.update(saved)
     run_bad = [{"recording_id": r["recording_id"], "reason": r["reason"]} for r in ran["recordings"]
-               if r["status"] == "quarantined"]
+               if r["status"] == "unscored"]
     assert [b["recording_id"] for b in bad] == ["short"]
     assert bad == run_bad
     assert "windowing.window_s: expected a recording at least one window (4 s) long" in bad[0]["reason"]

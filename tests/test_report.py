@@ -138,7 +138,7 @@ def make_store(base: Path):
     now = pd.Timestamp("2026-01-01 02:00:00", tz="UTC")
     recs = pd.DataFrame({
         "run_id": run_id, "recording_id": ["rover-a", "rover-b", "rover-c"], "content_hash": ["h1", "h2", ""],
-        "duration_s": [11.99, 11.99, None], "status": ["scored", "scored", "quarantined"],
+        "duration_s": [11.99, 11.99, None], "status": ["scored", "scored", "unscored"],
         "reason": ["", "", "rover-c/imu.csv: column 'ax': expected numbers, got text"],
         "path": [str(inbox / "rover-a"), str(inbox / "rover-b"), str(inbox / "rover-c")]})
     st.append("recordings", recs)
@@ -161,7 +161,7 @@ def make_store(base: Path):
     st.append("runs", pd.DataFrame([{
         "run_id": run_id, "started_at": now, "finished_at": now, "code_version": "0.1.0",
         "profile_hash": load_profile(inbox / "profile.toml").digest(), "baseline_id": "b-test", "n_recordings": 3,
-        "n_scored": 2, "n_quarantined": 1, "n_windows": 17, "n_flagged": 4, "status": "partial",
+        "n_scored": 2, "n_unscored": 1, "n_windows": 17, "n_flagged": 4, "status": "partial",
         "inbox": str(inbox)}]))
     return st, run_id, w, inbox
 
@@ -220,8 +220,8 @@ def test_report_matches_store(store_run):
         assert int(row[5]) == int(g["flagged"].sum())
         assert int(row[6]) == len(flagged_spans(g[g["score"].notna()]))
         assert row[7].startswith(f"{g['score'].max():.3f}")
-    assert by_name["rover-c"][1] == "quarantined" and "expected numbers, got text" in by_name["rover-c"][8]
-    assert "expected numbers, got text" in text.split("Quarantined recordings")[1]
+    assert by_name["rover-c"][1] == "unscored" and "expected numbers, got text" in by_name["rover-c"][8]
+    assert "expected numbers, got text" in text.split("Unscored recordings")[1]
 
 
 def test_top_windows_one_per_event(store_run):
@@ -310,7 +310,7 @@ def test_report_errors(tmp_path):
     from fleetsift.store import Store
 
     st = Store(tmp_path / "empty").init()
-    with pytest.raises(ValueError, match="no runs"):
+    with pytest.raises(ValueError, match="committed runs"):
         write_report(str(st.root), None, str(tmp_path / "r.html"))
 
 
