@@ -42,7 +42,7 @@ VARIANTS = {
     "default": "",
     "knn in windows": "[scoring]\nknn_unit = \"window\"\n",
     "density (LOF)": "[scoring]\nmethod = \"density\"\n",
-    "distance to mean": "[scoring]\nmethod = \"mean\"\n",
+    "distance to mean": "[scoring]\nmethod = \"frechet_mean\"\n",
     "batch only": "[baseline]\nsource = \"batch\"\n",
     "ridge 0.3": "[descriptor]\nridge = 0.3\n",
     "before": "[scoring]\nknn_unit = \"window\"\n[baseline]\nsource = \"batch\"\n[descriptor]\nridge = 0.3\n"

@@ -11,12 +11,14 @@ import hashlib
 import json
 import math
 import tomllib
+import warnings
 from dataclasses import asdict, dataclass, field
 from pathlib import Path
 from typing import Any
 
 from fleetsift.errors import ProfileError
-from fleetsift.vocabulary import (BASELINE_SOURCES, DESCRIPTOR_KINDS, KNN_STATS, KNN_UNITS, METRICS, SCORING_METHODS,
+from fleetsift.vocabulary import (BASELINE_SOURCES, DEPRECATED_KEYS, DEPRECATED_VALUES, DESCRIPTOR_KINDS, KNN_STATS,
+                                  KNN_UNITS, METRICS, SCORING_METHODS,
                                   STAMP_SOURCES, STREAM_KINDS, TIME_UNITS)
 
 PROFILE_NAME = "profile.toml"
@@ -96,7 +98,7 @@ class Scoring:
     exclusion_s: float = 30.0
     trim_fraction: float = 0.1
     threshold_c: float = 3.0
-    top_channels: int = 3
+    n_top_channels: int = 3  # how many channels each flagged window names (windows.top_channels)
 
 
 @dataclass(frozen=True)
@@ -258,8 +260,34 @@ def parse_profile(text: str, path: str = "<profile>") -> Profile:
     return profile_from_dict(_load_toml(text, path), path)
 
 
+class ProfileDeprecation(FutureWarning):
+    """A profile key or value renamed in this release: still read, with this message, for one release."""
+
+
+def _renamed(data: dict, path: str) -> dict:
+    """``data`` with deprecated keys and values under their new names, warning once per use."""
+    out = dict(data)
+    for (section, old), new in DEPRECATED_KEYS.items():
+        sec = out.get(section)
+        if isinstance(sec, dict) and old in sec:
+            if new in sec:
+                raise ProfileError(path, f"{section}.{old}", f"only its new name {section}.{new}", "both names")
+            sec = {(new if k == old else k): v for k, v in sec.items()}
+            out[section] = sec
+            warnings.warn(f"{path}: {section}.{old} is deprecated, call it {section}.{new}", ProfileDeprecation,
+                          stacklevel=3)
+    for (section, key, old), new in DEPRECATED_VALUES.items():
+        sec = out.get(section)
+        if isinstance(sec, dict) and sec.get(key) == old:
+            out[section] = {**sec, key: new}
+            warnings.warn(f'{path}: {section}.{key} = "{old}" is deprecated, write "{new}"', ProfileDeprecation,
+                          stacklevel=3)
+    return out
+
+
 def profile_from_dict(data: dict, path: str = "<profile>") -> Profile:
-    """Validate already-parsed profile data."""
+    """Validate already-parsed profile data (deprecated names are read under their new ones, with a warning)."""
+    data = _renamed(data, path)
     c = _Checker(path)
     c.no_unknown(data, {"windowing", "descriptor", "scoring", "baseline", "streams"}, "")
 
@@ -300,7 +328,7 @@ def profile_from_dict(data: dict, path: str = "<profile>") -> Profile:
         exclusion_s=c.number(s, "exclusion_s", "scoring", Scoring.exclusion_s, nonneg=True, finite=False),
         trim_fraction=c.number(s, "trim_fraction", "scoring", Scoring.trim_fraction, lo=0.0, hi=0.5),
         threshold_c=c.number(s, "threshold_c", "scoring", Scoring.threshold_c, positive=True),
-        top_channels=c.integer(s, "top_channels", "scoring", Scoring.top_channels, lo=1),
+        n_top_channels=c.integer(s, "n_top_channels", "scoring", Scoring.n_top_channels, lo=1),
     )
 
     b = c.table(data.get("baseline", {}), "baseline")

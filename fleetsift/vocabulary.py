@@ -17,8 +17,8 @@ DESCRIPTOR_KINDS = ("ledoit_wolf", "oas", "rbf", "lagged")
 METRICS = ("riemann", "logeuclid", "euclid")
 # What the SPD geometry computes: the scored metrics plus two more for comparison.
 SPD_METRICS = METRICS + ("logdet", "wasserstein")
-# knn: k-th nearest neighbour distance; density: local outlier factor; mean: distance to the Fréchet mean.
-SCORING_METHODS = ("knn", "density", "mean")
+# knn: k-th nearest neighbour distance; density: local outlier factor; frechet_mean: distance to the Fréchet mean.
+SCORING_METHODS = ("knn", "density", "frechet_mean")
 # How the k nearest reference distances make a score: the k-th one, or their mean.
 KNN_STATS = ("kth", "mean")
 # Neighbours counted in recordings (the nearest window of each of the k nearest recordings) or in windows.
@@ -37,5 +37,10 @@ SCORED, UNSCORED, OK, PARTIAL = "scored", "unscored", "ok", "partial"
 RECORDING_STATUSES = (SCORED, UNSCORED)
 STAGE_STATUSES = (OK, UNSCORED)
 RUN_STATUSES = (OK, PARTIAL)
+
+# Profile keys and values renamed in 0.3, still read for one release with a deprecation message:
+# (section, old key) -> new key, and (section, key, old value) -> new value.
+DEPRECATED_KEYS = {("scoring", "top_channels"): "n_top_channels"}
+DEPRECATED_VALUES = {("scoring", "method", "mean"): "frechet_mean"}
 # Read from stores written before 0.3, which called an unscored recording "quarantined".
 LEGACY_STATUSES = {"quarantined": UNSCORED}

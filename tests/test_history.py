@@ -201,11 +201,11 @@ def test_per_stream_blocks_and_the_ridge():
 def test_scoring_method_and_unit_reach_the_fleet_step():
     recs, _ = _recs(10, n_rec=4, fault_in=(1,))
     out = {}
-    for method in ("knn", "density", "mean"):
+    for method in ("knn", "density", "frechet_mean"):
         for unit in ("recording", "window"):
             res = _score(recs, sc=dataclasses.replace(SC, method=method, knn_unit=unit))
             out[method, unit] = np.concatenate([w.scores["riemann"][w.valid] for w in res.windows])
-    assert not np.allclose(out["mean", "recording"], out["knn", "recording"])
+    assert not np.allclose(out["frechet_mean", "recording"], out["knn", "recording"])
     assert not np.allclose(out["density", "recording"], out["knn", "recording"])
     assert not np.allclose(out["knn", "window"], out["knn", "recording"])
 

@@ -954,16 +954,17 @@ per_stream = true     # one descriptor per stream (imu, camera), combined by the
 [scoring]
 metric = "riemann"    # primary metric: riemann | logeuclid | euclid
 method = "knn"        # knn: k-th nearest neighbour distance | density: local outlier factor |
-                      # mean: distance to the references' Frechet mean
+                      # frechet_mean: distance to the references' Frechet mean
 k = 3                 # neighbours
 knn_unit = "recording"  # recording: the nearest window of each of the k nearest recordings (a behaviour is normal
                         # only where k recordings show it) | window: the k nearest windows
 knn_stat = "kth"      # kth | mean (of the k distances)
 exclusion_s = 30.0    # same-recording neighbours within this many seconds never count
 trim_fraction = 0.1   # a first night's batch baseline: drop this share of highest-scoring windows and refit
-threshold_c = 3.0     # flag when the score, a robust z, exceeds c (median + c x 1.4826 MAD of the references'
-                      # leave-one-out scores: c = 3 is about three standard deviations)
-top_channels = 3      # channels named per flagged window
+threshold_c = 3.0     # c: flag a window whose distance exceeds median + c x robust sigma of the references'
+                      # leave-one-out distances (robust sigma = 1.4826 x MAD), i.e. whose robust z exceeds c;
+                      # c = 3 is about three standard deviations
+n_top_channels = 3    # how many channels each flagged window names (its top channels)
 
 [baseline]
 source = "history"    # history: earlier nights' unflagged windows (tonight's batch on a first night) |
