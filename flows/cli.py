@@ -453,8 +453,8 @@ def build_parser() -> argparse.ArgumentParser:
     _common(e, inbox=True)
     lab = e.add_mutually_exclusive_group(required=True)
     lab.add_argument("--labels", metavar="FILE",
-                     help="CSV recording_id,t_start_s,t_end_s of anomalous intervals "
-                          "(or recording,start_s,end_s); this or --reviews-from is required")
+                     help="CSV recording_id,t_start_s,t_end_s of anomalous intervals; "
+                          "this or --reviews-from is required")
     lab.add_argument("--reviews-from", dest="reviews_from", metavar="STORE",
                      help="use the engineers' verdicts in this store as the labels (only reviewed windows count); "
                           "this or --labels is required")

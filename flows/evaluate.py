@@ -140,7 +140,7 @@ def evaluate_store(store: str, run_id: str, labels_path: str | None = None, plot
     known = set(w["recording_id"])
     out: dict = {"auc": {}, "auc_se": {}, "n_windows": 0, "n_anomalous": 0, "run_id": run_id,
                  "labels": "reviews" if labels is None else "file",
-                 "labels_without_recording": [] if labels is None else sorted(set(labels["recording"]) - known),
+                 "labels_without_recording": [] if labels is None else sorted(set(labels["recording_id"]) - known),
                  "per_metric": {}, "comparison_detectors": {}, "comparison_detectors_se": {},
                  "comparison_features": COMPARISON_FEATURES}
     recordings = st.read("recordings", run_id=run_id) if labels is None else None

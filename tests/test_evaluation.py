@@ -71,19 +71,25 @@ def test_hanley_mcneil_limits():
 
 # ------------------------------------------------------------------------------------------ labels, windows
 
-def test_label_windows_by_centre(tmp_path):
+@pytest.mark.parametrize("header", ["recording_id,t_start_s,t_end_s", "recording,start_s,end_s"])
+def test_label_windows_by_centre(tmp_path, header):
     p = tmp_path / "labels.csv"
-    p.write_text("recording,start_s,end_s\nr1,10,20\nr2,0,1\n")
-    labels = read_labels(p)
+    p.write_text(header + "\nr1,10,20\nr2,0,1\n")
+    if header.startswith("recording,"):  # the pre-0.3 header still reads, with a deprecation message
+        with pytest.warns(FutureWarning, match="recording,start_s,end_s are deprecated"):
+            labels = read_labels(p)
+    else:
+        labels = read_labels(p)
+    assert list(labels.columns[:3]) == ["recording_id", "t_start_s", "t_end_s"]
     w = pd.DataFrame({"recording_id": ["r1"] * 4 + ["r2", "r3"], "t_start_s": [6, 8, 16, 18, 0, 10],
                       "t_end_s": [10, 12, 24, 26, 4, 20]})
     # centres 8, 10, 20, 22, 2, 15: inside r1's [10, 20] are 10 and 20 (closed interval); r2's [0, 1] misses 2.
     assert label_windows(w, labels).tolist() == [False, True, True, False, False, False]
 
 
-@pytest.mark.parametrize("text,field", [("recording,start_s\nr,1\n", "column 'end_s'"),
-                                        ("recording,start_s,end_s\nr,5,1\n", "row 2"),
-                                        ("recording,start_s,end_s\nr,a,1\n", "column 'start_s'")])
+@pytest.mark.parametrize("text,field", [("recording_id,t_start_s\nr,1\n", "column 't_end_s'"),
+                                        ("recording_id,t_start_s,t_end_s\nr,5,1\n", "row 2"),
+                                        ("recording_id,t_start_s,t_end_s\nr,a,1\n", "column 't_start_s'")])
 def test_read_labels_errors(tmp_path, text, field):
     p = tmp_path / "labels.csv"
     p.write_text(text)
@@ -218,7 +224,7 @@ def test_score_point_detects_a_planted_burst_and_reports_errors(tmp_path):
     rng = np.random.default_rng(4)
     prepared = _cached(tmp_path, _recordings(rng, n_rec=4, burst=(2, 20.0, 26.0)))
     labels = tmp_path / "labels.csv"
-    labels.write_text("recording,start_s,end_s\nr2,20,26\n")
+    labels.write_text("recording_id,t_start_s,t_end_s\nr2,20,26\n")
     prof = _profile(rate_hz=20.0, window_s=2.0, hop_s=1.0)
     prof = Profile(path=prof.path, streams=prof.streams, windowing=prof.windowing, scoring=Scoring(exclusion_s=5.0))
     pt = dict(base_values(prof), point=0, varied="base")

@@ -1043,7 +1043,7 @@ def make_fleet(out_dir: str | Path, n_recordings: int = 8, duration_s: float = 6
         rng = np.random.default_rng([seed, i])
         for a, b, k in make_recording(out / name, rng, kinds, duration_s, fps, size, codec):
             rows.append(f"{name},{a:.2f},{b:.2f},{k}")
-    (out / "labels.csv").write_text("recording,start_s,end_s,kind\n" + "".join(r + "\n" for r in rows))
+    (out / "labels.csv").write_text("recording_id,t_start_s,t_end_s,kind\n" + "".join(r + "\n" for r in rows))
     (out / "profile.toml").write_text(PROFILE_TOML.replace("clock_offset_s = -0.35",
                                                            f"clock_offset_s = {-CAMERA_OFFSET_S}"))
     return [name for name, _ in plan]
