@@ -40,7 +40,7 @@ TABLE_SCHEMAS: dict[str, pa.Schema] = {
         ("run_id", pa.string()),
         ("started_at", pa.timestamp("us", tz="UTC")),
         ("finished_at", pa.timestamp("us", tz="UTC")),
-        ("code_version", pa.string()),
+        ("code_version", pa.string()),  # deprecated: the fleetsift package version, see fleetsift_version
         ("profile_hash", pa.string()),
         ("baseline_id", pa.string()),
         ("n_recordings", pa.int64()),
@@ -55,6 +55,7 @@ TABLE_SCHEMAS: dict[str, pa.Schema] = {
         ("n_references", pa.int64()),
         ("space_key", pa.string()),
         ("score_output", pa.string()),  # the score stage's bank, relative to the store: later nights' references
+        ("fleetsift_version", pa.string()),  # added in 0.3: the package version that wrote the run
     ]),
     "recordings": pa.schema([
         ("run_id", pa.string()),
@@ -301,6 +302,8 @@ class Store:
         # Stores written before 0.3 said "quarantined" for an unscored recording.
         if "n_quarantined" in df.columns:
             df["n_unscored"] = df["n_unscored"].fillna(df.pop("n_quarantined"))
+        if table == "runs":
+            df["fleetsift_version"] = df["fleetsift_version"].fillna(df["code_version"])
         if "status" in df.columns:
             df["status"] = df["status"].replace(LEGACY_STATUSES)
         return df

@@ -37,7 +37,7 @@ def summarise(result: dict, metric: str) -> dict:
         w = w[w["metric"] == metric]
         for rid, g in w.groupby("recording_id"):
             sc = g["score"].dropna()
-            per[rid] = {"n_windows": int(len(sc)), "n_invalid_windows": int(g["score"].isna().sum()),
+            per[rid] = {"n_windows": int(len(sc)), "n_unscored_windows": int(g["score"].isna().sum()),
                         "max_score": _num(sc.max()) if len(sc) else None, "n_flagged": int(g["flagged"].sum())}
     unscored = [{"recording_id": r["recording_id"], "reason": r["reason"]}
                 for r in result["recordings"] if r["status"] == UNSCORED]
@@ -53,7 +53,10 @@ def summarise(result: dict, metric: str) -> dict:
     return {
         "run_id": result["run_id"],
         "store": result["store"],
+        # The runs table's version that committed this run (as `fleetsift history` and `report --as-of` use it);
+        # each table has its own version, all in table_versions (for DeltaTable(STORE/TABLE, version=...)).
         "store_version": result["store_version"],
+        "table_versions": result.get("table_versions"),
         "baseline_id": (result.get("score") or {}).get("baseline_id"),
         # Which references the scores were measured against: earlier nights (history), tonight's batch, or chosen
         # recordings; their count, recordings and the runs they come from.
@@ -67,12 +70,13 @@ def summarise(result: dict, metric: str) -> dict:
         "orchestrator": result.get("orchestrator", "prefect"),
         "elapsed_s": result["elapsed_s"],
         "report": result.get("report"),
-        "note": SAFETY_NOTE,
+        "safety_note": SAFETY_NOTE,
+        "note": SAFETY_NOTE,  # deprecated name of "safety_note", removed in the next release
     }
 
 
 def print_table(summary: dict, out=sys.stdout) -> None:
-    print(f"run {summary['run_id']}  store version {summary['store_version']}  baseline {summary['baseline_id']}  "
+    print(f"run {summary['run_id']}  runs-table version {summary['store_version']}  baseline {summary['baseline_id']}  "
           f"metric {summary['metric']}", file=out)
     print(f"{'recording':<28} {'status':<12} {'windows':>7} {'flagged':>7} {'max score':>10}", file=out)
     for r in summary["recordings"]:
@@ -274,8 +278,8 @@ def cmd_evaluate(a) -> int:
         for name, v, se in rows:
             auc = "n/a (one class only)" if v is None else f"{v:.3f}" + (f" +- {se:.3f}" if se is not None else "")
             print(f"{name:<22} ROC AUC {auc}")
-        if ev.get("comparison_detectors_note"):
-            print(f"comparison detectors: {ev['comparison_detectors_note']}")
+        if ev.get("comparison_detectors_reason"):
+            print(f"comparison detectors: {ev['comparison_detectors_reason']}")
         print(f"windows {ev['n_windows']}, anomalous {ev['n_anomalous']}" + (f"; ROC plot {ev['plot']}"
                                                                              if ev.get("plot") else ""))
     return EXIT_OK
@@ -506,7 +510,7 @@ def build_parser() -> argparse.ArgumentParser:
     _common(sw, wait=True, json_=True)
     sw.set_defaults(fn=cmd_sweep)
 
-    h = _sub(sub, "history", help="list the store's runs with the table versions that committed them")
+    h = _sub(sub, "history", help="list the store's runs with the runs-table version that committed each")
     _common(h, store="required", json_=True)
     h.set_defaults(fn=cmd_history)
 

@@ -52,10 +52,10 @@ def run_descriptors(store: str, run_id: str) -> dict:
     st = Store(store)
     runs = st.read("runs", run_id=run_id)
     if runs.empty:
-        return {"note": f"run {run_id} is not in the store"}
+        return {"reason": f"run {run_id} is not in the store"}
     rel = runs["score_output"].iloc[0]
     if not isinstance(rel, str) or not rel or not (st.root / rel).exists():
-        return {"note": f"run {run_id} has no stored window descriptors (written by an older release?)"}
+        return {"reason": f"run {run_id} has no stored window descriptors (written by an older release?)"}
     bank = Bank.from_arrays(Store.load_arrays(st.root / rel))
     base = Store.load_arrays(st.root / "baselines" / f"{runs['baseline_id'].iloc[0]}.npz")
     X = np.hstack([tangent_vectors(bank.descriptors[b], base[f"{b}.riemann.mean"]) for b in bank.descriptors])
@@ -63,7 +63,7 @@ def run_descriptors(store: str, run_id: str) -> dict:
 
 
 def _comparison_scores(wm: pd.DataFrame, d: dict) -> dict[str, np.ndarray] | str:
-    """IsolationForest / LOF scores aligned with the rows of ``wm``, or a note saying why there are none."""
+    """IsolationForest / LOF scores aligned with the rows of ``wm``, or the reason why there are none."""
     key = pd.MultiIndex.from_arrays([d["recording_id"], d["window_index"]])
     pos = pd.Series(np.arange(len(key)), index=key)
     want = pd.MultiIndex.from_arrays([wm["recording_id"].astype(str).to_numpy(), wm["window_index"].to_numpy()])
@@ -160,7 +160,7 @@ def evaluate_store(store: str, run_id: str, labels_path: str | None = None, plot
         out["auc_se"][m] = hanley_mcneil_se(auc, int(y.sum()), int((~y).sum())) if auc is not None else None
         flagged = wm["flagged"].to_numpy(bool)
         tp = int((flagged & y).sum())
-        out["per_metric"][m] = {"flagged": int(flagged.sum()), "true_positives": tp,
+        out["per_metric"][m] = {"n_flagged": int(flagged.sum()), "true_positives": tp,
                                 "precision": tp / flagged.sum() if flagged.sum() else None,
                                 "recall": tp / y.sum() if y.sum() else None}
         out["n_windows"] = int(len(wm))
@@ -171,9 +171,9 @@ def evaluate_store(store: str, run_id: str, labels_path: str | None = None, plot
         y_ref, wm_ref = y, wm
     if comparison and wm_ref is not None and len(wm_ref) >= 3:
         d = run_descriptors(store, run_id)
-        sc = d["note"] if "note" in d else _comparison_scores(wm_ref, d)
+        sc = d["reason"] if "reason" in d else _comparison_scores(wm_ref, d)
         if isinstance(sc, str):
-            out["comparison_detectors_note"] = sc
+            out["comparison_detectors_reason"] = sc
         else:
             for name, s in sc.items():
                 auc = roc_auc(y_ref, s)

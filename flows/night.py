@@ -176,5 +176,5 @@ def run_night(steps: Steps, inbox: str, store: str, profile_path: str | None = N
     rows = [rec_rows[k] for k in sorted(rec_rows)]
     written = steps.write(str(st.root), run_id, started, fleet, __version__, rows, score, str(inbox_p))
     return {"run_id": run_id, "store": str(st.root), "store_version": written["version"],
-            "windows_version": written["windows_version"], "score": score, "recordings": rows, "stages": stats,
+            "windows_version": written["windows_version"], "table_versions": written["table_versions"], "score": score, "recordings": rows, "stages": stats,
             "profile": fleet.path, "elapsed_s": round(time.time() - started, 2)}

@@ -507,7 +507,7 @@ def write_report(store: str, run_id: str | None, out: str, as_of: int | None = N
         "<h1>fleetsift screening report</h1>",
         f"<p class='meta'>Run <code>{_e(run_id)}</code> &middot; finished {_e(iso_time(run['finished_at']))} &middot; "
         f"baseline <code>{_e(run['baseline_id'])}</code> &middot; primary metric <b>{_e(metric)}</b> &middot; "
-        f"profile <code>{_e(run['profile_hash'])}</code> &middot; fleetsift {_e(run['code_version'])}"
+        f"profile <code>{_e(run['profile_hash'])}</code> &middot; fleetsift {_e(run['fleetsift_version'])}"
         + (f" &middot; runs-table version {as_of}" if as_of is not None else "") + "</p>",
         _settings_html(fleet_prof, metric, thresholds),
         f"<p class='safety'><b>Safety note.</b> {_e(SAFETY_NOTE)}</p>",

@@ -382,10 +382,12 @@ def run_write(store_root: str, run_id: str, started_at: float, profile: Profile,
     n_q = int((rec_df["status"] == UNSCORED).sum())
     runs = pd.DataFrame([{
         "run_id": run_id, "started_at": pd.Timestamp(started_at, unit="s", tz="UTC"),
-        "finished_at": pd.Timestamp(time.time(), unit="s", tz="UTC"), "code_version": code_ver,
+        "finished_at": pd.Timestamp(time.time(), unit="s", tz="UTC"), "fleetsift_version": code_ver,
+        "code_version": code_ver,  # deprecated name of fleetsift_version (it never held a stage code version)
         "profile_hash": profile.digest(), "baseline_id": baseline_id, "n_recordings": len(rec_df),
         "n_scored": int((rec_df["status"] == SCORED).sum()), "n_unscored": n_q, "n_windows": n_windows,
         "n_flagged": n_flagged, "status": OK if n_q == 0 else PARTIAL, "inbox": inbox, **extra,
     }])
     store.append("runs", runs)
-    return {"version": store.version("runs"), "windows_version": store.version("windows")}
+    versions = {t: store.version(t) for t in ("runs", "recordings", "windows")}
+    return {"version": versions["runs"], "windows_version": versions["windows"], "table_versions": versions}

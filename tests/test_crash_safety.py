@@ -174,7 +174,7 @@ def assert_matches_json(tables: dict, out: dict) -> None:
     w = w[(w["run_id"] == out["run_id"]) & (w["metric"] == out["metric"])]
     for rec in out["recordings"]:
         g = w[w["recording_id"] == rec["recording_id"]]
-        assert len(g) == rec["n_windows"] + rec["n_invalid_windows"]
+        assert len(g) == rec["n_windows"] + rec["n_unscored_windows"]
         assert int(g["flagged"].sum()) == rec["n_flagged"]
         assert np.isclose(g["score"].max(), rec["max_score"], rtol=0, atol=1e-6)
 

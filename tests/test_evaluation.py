@@ -290,7 +290,8 @@ def test_evaluate_cli_contract(evaluated):
 
     inbox, store, base, ev = evaluated
     assert set(ev["auc"]) == {"riemann", "logeuclid", "euclid"}
-    assert set(ev["comparison_detectors"]) == {"isolation_forest", "local_outlier_factor"}, ev.get("comparison_detectors_note")
+    assert set(ev["comparison_detectors"]) == {"isolation_forest", "local_outlier_factor"}, \
+        ev.get("comparison_detectors_reason")
     for v in [*ev["auc"].values(), *ev["comparison_detectors"].values()]:
         assert 0.0 <= v <= 1.0
     # The counts agree with the store's windows and the labels, computed here independently.

@@ -195,7 +195,7 @@ def test_one_safety_text_in_the_cli_json_help_report_and_readme(store_run):
     st, run_id, w, out = store_run
     summary = summarise({"run_id": run_id, "store": str(st.root), "store_version": 0, "recordings": [],
                          "stages": {}, "elapsed_s": 0.0}, "riemann")
-    assert summary["note"] == SAFETY_NOTE
+    assert summary["safety_note"] == summary["note"] == SAFETY_NOTE
     flat = lambda text: " ".join(text.split())  # noqa: E731 -- line wrapping aside
     assert flat(SAFETY_NOTE) in flat(build_parser().format_help())
     assert flat(SAFETY_NOTE) in flat(" ".join(parse(out).text))
