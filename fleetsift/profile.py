@@ -46,6 +46,8 @@ class TableStream:
     instance: int = 0  # ULog multi-instance topics
     stamp: str = "header"  # ROS 2: header stamp or receive time
     kind: str = "table"
+    # Physical unit of each channel (after calibration), shown on the report's traces; optional per channel.
+    units: dict[str, str] = field(default_factory=dict)
 
 
 @dataclass(frozen=True)
@@ -134,7 +136,11 @@ class Profile:
     def section(self, name: str) -> dict[str, Any]:
         """The plain-data content of one section, the unit that cache keys are built from."""
         if name.startswith("streams."):
-            return _plain(asdict(self.streams[name.split(".", 1)[1]]))
+            sec = _plain(asdict(self.streams[name.split(".", 1)[1]]))
+            # Units only label the report's traces: no stage reads them, so they stay out of every cache key
+            # (the report's own cache key includes them, flows/report.py).
+            sec.pop("units", None)
+            return sec
         return _plain(asdict(getattr(self, name)))
 
     def to_dict(self) -> dict[str, Any]:
@@ -375,7 +381,7 @@ def profile_from_dict(data: dict, path: str = "<profile>") -> Profile:
 
 def _parse_table(c: _Checker, name: str, st: dict, where: str) -> TableStream:
     allowed = {"kind", "file", "time_column", "time_unit", "channels", "fields", "clock_offset_s", "calibration",
-               "topic", "instance", "stamp"}
+               "topic", "instance", "stamp", "units"}
     c.no_unknown(st, allowed, where)
     channels = c.strings(st, "channels", where, ())
     fields = c.strings(st, "fields", where, ())
@@ -399,6 +405,11 @@ def _parse_table(c: _Checker, name: str, st: dict, where: str) -> TableStream:
         if scale == 0:
             c.fail(f"{cw}.scale", "a non-zero number", scale)
         cal[ch] = Calibration(bias=c.number(spec, "bias", cw, 0.0), scale=scale)
+    units_raw = c.table(st.get("units", {}), f"{where}.units")
+    for ch in units_raw:
+        if channels and ch not in channels:
+            c.fail(f"{where}.units.{ch}", f"a unit for one of the channels {list(channels)}", repr(ch))
+        c.string(units_raw, ch, f"{where}.units", None)
     return TableStream(
         name=name,
         file=c.relative_file(st, "file", where),
@@ -411,6 +422,7 @@ def _parse_table(c: _Checker, name: str, st: dict, where: str) -> TableStream:
         topic=topic,
         instance=c.integer(st, "instance", where, 0, lo=0),
         stamp=c.string(st, "stamp", where, "header", choices=STAMP_SOURCES),
+        units=dict(units_raw),
     )
 
 

@@ -116,7 +116,7 @@ def flagged_spans(g: pd.DataFrame) -> list[tuple[float, float]]:
 
 def pick_top(prim: pd.DataFrame, n: int) -> pd.DataFrame:
     """The n highest-scoring flagged windows, skipping any that overlaps a window already picked in the same
-    recording, so overlapping windows of one event do not fill the list (non-maximum suppression, common
+    recording, so overlapping windows of one flagged span do not fill the list (non-maximum suppression, common
     practice in detection)."""
     cand = prim[prim["flagged"]].sort_values(["score", "recording_id", "window_index"],
                                             ascending=[False, True, True])
@@ -157,6 +157,7 @@ class RecordingSource:
         self.dir = rec_dir
         self.profile = profile
         self.tables = [recording.read_table_stream(rec_dir, s) for s in profile.table_streams()]
+        self.units = {ch: u for s in profile.table_streams() for ch, u in s.units.items()}
         # Times in the store are seconds from the earliest sample of any table stream (fleetsift.featurizers.recording).
         self.t0 = min(float(tb.t[0]) for tb in self.tables)
 
@@ -262,7 +263,7 @@ def timeline_png(g: pd.DataFrame, threshold: float, marks: dict[int, int], ylabe
 
 
 def traces_png(series: list[tuple[str, np.ndarray, np.ndarray]], t_start: float, t_end: float,
-               shares: dict[str, float], max_rows: int = 8) -> str:
+               shares: dict[str, float], max_rows: int = 8, units: dict[str, str] | None = None) -> str:
     """The table channels around the window as stacked strips of one plot (each scaled to its own range, which is
     printed at the right); channels named among the drivers in the accent. One Axes instead of a panel per channel
     draws several times faster."""
@@ -284,7 +285,8 @@ def traces_png(series: list[tuple[str, np.ndarray, np.ndarray]], t_start: float,
         lo, hi = (float(np.nanmin(v)), float(np.nanmax(v))) if np.isfinite(v).any() else (0.0, 0.0)
         span = hi - lo if hi > lo else 1.0
         ax.plot(t, y0 - 0.4 + 0.8 * (v - lo) / span, lw=0.7, color=ACCENT if hot else INK)
-        ax.text(1.005, y0, f"{lo:.3g} .. {hi:.3g}", transform=right, fontsize=6, va="center", color="#526170")
+        unit = f" {(units or {}).get(name, '')}".rstrip()
+        ax.text(1.005, y0, f"{lo:.3g} .. {hi:.3g}{unit}", transform=right, fontsize=6, va="center", color="#526170")
         labels.append(f"{name} {shares[name]:.0%}" if hot else name)
         colours.append(ACCENT if hot else "#333")
     ax.set_yticks(np.arange(n)[::-1], labels, fontsize=7)
@@ -441,14 +443,15 @@ def _body_key(w: pd.DataFrame, recs: pd.DataFrame, fleet_prof, prof_note: str, t
     for pth in recs.get("path", pd.Series(dtype=str)).astype(str):
         f = Path(pth) / "profile.toml" if pth else None
         own.append(f"{f.stat().st_mtime_ns}:{f.stat().st_size}" if f is not None and f.is_file() else "")
-    h.update(repr((fleet_prof.digest() if fleet_prof is not None else None, prof_note, int(top_n), own,
+    units = sorted((s.name, sorted(s.units.items())) for s in fleet_prof.table_streams()) if fleet_prof else []
+    h.update(repr((fleet_prof.digest() if fleet_prof is not None else None, units, prof_note, int(top_n), own,
                    sorted((verdicts or {}).items()))).encode())
     return h.hexdigest()[:24]
 
 
 def _settings_html(prof, metric: str, thresholds: dict) -> str:
     """The values the scores depend on, printed (not only the profile's hash)."""
-    c = ", ".join(sorted({f"{v:g}" for v in thresholds.values()})) or "-"
+    c = f"{thresholds[metric]:g}" if metric in thresholds else "-"  # the c that flagged the primary metric
     if prof is None:
         return f"<p class='meta' id='settings'>Settings: metric {_e(metric)}, c = {c} (profile not found).</p>"
     w, sc, d = prof.windowing, prof.scoring, prof.descriptor
@@ -518,7 +521,7 @@ def write_report(store: str, run_id: str | None, out: str, as_of: int | None = N
             ("flagged spans", sum(len(flagged_spans(g)) for _, g in valid.groupby("recording_id")))))
         + "</div>",
         f"<p class='meta' id='threshold'>{_e(THRESHOLD_TEXT)} This run: c = "
-        + ", ".join(sorted({f"{v:g}" for v in thresholds.values()})) + ".</p>",
+        + (f"{thresholds[metric]:g}" if metric in thresholds else "-") + ".</p>",
         _references_html(st, run),
     ]
     if prof_note:
@@ -557,7 +560,7 @@ def write_report(store: str, run_id: str | None, out: str, as_of: int | None = N
         start = len(parts)
         # --- windows worth a look
         parts.append(f"<h2>Windows worth a look</h2><p>The {len(top)} highest-scoring flagged windows of the primary "
-                     "metric, one per event (a window overlapping a higher-ranked one of the same recording is left "
+                     "metric, one per flagged span (a window overlapping a higher-ranked one of the same recording is left "
                      "out; all flagged windows are shaded in the timelines below).</p>")
         if not len(top):
             parts.append("<p>No window crossed the threshold in this run.</p>")
@@ -600,8 +603,10 @@ def write_report(store: str, run_id: str | None, out: str, as_of: int | None = N
             if src is not None:
                 span = r.t_end_s - r.t_start_s
                 series = src.traces(r.t_start_s - 0.5 * span, r.t_end_s + 0.5 * span)
-                media.append(f"<img alt='table traces of window {rank}' "
-                             f"src='{traces_png(series, r.t_start_s, r.t_end_s, shares)}'>")
+                unit_txt = ", ".join(f"{ch} in {u}" for ch, u in src.units.items())
+                media.append(f"<img alt='table traces of window {rank}" + (f" ({_e(unit_txt)})" if unit_txt else "")
+                             + "' "
+                             f"src='{traces_png(series, r.t_start_s, r.t_end_s, shares, units=src.units)}'>")
             else:
                 media.append(f"<p class='note'>{_e(note)}</p>")
             vd = verdicts.get((r.recording_id, int(r.window_index)))

@@ -123,8 +123,8 @@ def comparison_scores(features: np.ndarray, seed: int = 0, n_neighbors: int = 20
     """Scores (higher = more unusual) of scikit-learn's IsolationForest (Liu et al. 2008) and LocalOutlierFactor
     (Breunig et al. 2000, novelty=False) fitted on all windows, the same unsupervised setting as ours.
 
-    Unlike our kNN scoring these know nothing of recordings: overlapping windows of one event are each other's
-    nearest neighbours, which hides a long event from LOF (our exclusion zone exists for that reason).
+    Unlike our kNN scoring these know nothing of recordings: overlapping windows of one span are each other's
+    nearest neighbours, which hides a long span from LOF (our exclusion zone exists for that reason).
     """
     from sklearn.ensemble import IsolationForest
     from sklearn.neighbors import LocalOutlierFactor

@@ -5,6 +5,7 @@ import base64
 import io
 import json
 import os
+import re
 import shutil
 import subprocess
 import sys
@@ -224,7 +225,7 @@ def test_report_matches_store(store_run):
     assert "expected numbers, got text" in text.split("Unscored recordings")[1]
 
 
-def test_top_windows_one_per_event(store_run):
+def test_top_windows_one_per_span(store_run):
     st, run_id, w, out = store_run
     prim = w[(w["metric"] == "riemann") & w["score"].notna()]
     top = pick_top(prim, 10)
@@ -379,3 +380,33 @@ def test_report_body_is_reused_for_a_run_with_the_same_windows(tmp_path):
     other = rerun("20260103T020000Z-0a1b2c", changed)
     assert len(list(cache.glob("*.html"))) == 2
     assert other.read_text().replace("20260103T020000Z-0a1b2c", run_id) != first.read_text()
+
+
+def test_report_prints_settings_threshold_units_and_iso_times(tmp_path):
+    """Window, hop, k, c and metric as values, the threshold in words with c, units on the traces (from the
+    profile's `units`), ISO 8601 times, and a score axis that names its metric and statistic."""
+    from fleetsift.flows.report import score_axis_label
+    from fleetsift.profile import load_profile
+
+    st, run_id, w, inbox = make_store(tmp_path)
+    prof = inbox / "profile.toml"
+    with_units = PROFILE.replace('channels = ["ax", "ay", "az", "gx", "gy", "gz"]\n',
+                                 'channels = ["ax", "ay", "az", "gx", "gy", "gz"]\n'
+                                 'units = { ax = "m/s^2", gz = "rad/s" }\n')
+    prof.write_text("[scoring]\nk = 4\nknn_stat = \"mean\"\n" + with_units)
+    out = tmp_path / "r.html"
+    write_report(str(st.root), run_id, str(out), top_n=1)
+    doc = parse(out)
+    text = re.sub(r"\s+([,.])", r"\1", " ".join(" ".join(doc.text).split()))  # text split at the tags
+    assert ("Settings: window 2 s, hop 1 s, clock 50 Hz, metric riemann, method knn, k 4, knn_stat mean, c 2, "
+            "descriptor ledoit_wolf.") in text
+    assert "median + c x robust sigma" in text and "robust sigma = 1.4826 x MAD" in text and "This run: c = 2." in text
+    assert "finished 2026-01-01T02:00:00Z" in text
+    (card,) = doc.cards
+    assert [i["alt"] for i in card["imgs"] if i["alt"].startswith("table traces")] == \
+        ["table traces of window 1 (ax in m/s^2, gz in rad/s)"]
+    # Units label the report only: they leave the stages' cache keys alone.
+    assert load_profile(prof).section("streams.imu") == \
+        load_profile(tmp_path / "inbox" / "profile.toml").section("streams.imu")
+    assert score_axis_label("riemann", load_profile(prof).scoring) == \
+        "robust z of the riemann distance, mean of k nearest (k = 4)"

@@ -981,6 +981,7 @@ time_column = "t"
 time_unit = "s"
 channels = ["ax", "ay", "az", "gx", "gy", "gz"]   # accel m/s^2 (x forward, y left, z up), gyro rad/s
 clock_offset_s = 0.0
+units = { ax = "m/s^2", ay = "m/s^2", az = "m/s^2", gx = "rad/s", gy = "rad/s", gz = "rad/s" }  # on the report's traces
 [streams.imu.calibration]
 ax = { bias = 0.0, scale = 1.0 }   # calibrated = (raw - bias) * scale
 ay = { bias = 0.0, scale = 1.0 }
