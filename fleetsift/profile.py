@@ -18,7 +18,7 @@ from typing import Any
 
 from fleetsift.errors import ProfileError
 from fleetsift.vocabulary import (BASELINE_SOURCES, DEPRECATED_KEYS, DEPRECATED_VALUES, DESCRIPTOR_KINDS, KNN_STATS,
-                                  KNN_UNITS, METRICS, SCORING_METHODS,
+                                  KNN_UNITS, METRICS, SCORING_METHODS, SHRINKAGE_ESTIMATORS,
                                   STAMP_SOURCES, STREAM_KINDS, TIME_UNITS)
 
 PROFILE_NAME = "profile.toml"
@@ -77,7 +77,8 @@ class Windowing:
 
 @dataclass(frozen=True)
 class Descriptor:
-    kind: str = "ledoit_wolf"
+    kind: str = "covariance"
+    shrinkage: str = "ledoit_wolf"  # estimator of the covariance kinds (covariance, lagged)
     include_mean: bool = True
     lags: int = 3
     # A noise floor added to every window covariance, in standardised units, or "auto": the smallest eigenvalue
@@ -285,8 +286,13 @@ def _renamed(data: dict, path: str) -> dict:
     for (section, key, old), new in DEPRECATED_VALUES.items():
         sec = out.get(section)
         if isinstance(sec, dict) and sec.get(key) == old:
-            out[section] = {**sec, key: new}
-            warnings.warn(f'{path}: {section}.{key} = "{old}" is deprecated, write "{new}"', ProfileDeprecation,
+            clash = [k for k in new if k != key and k in sec and sec[k] != new[k]]
+            if clash:
+                raise ProfileError(path, f"{section}.{clash[0]}", f'{new[clash[0]]!r} with {key} = "{old}"',
+                                   repr(sec[clash[0]]))
+            out[section] = {**sec, **new}
+            write = ", ".join(f'{k} = "{v}"' for k, v in new.items())
+            warnings.warn(f'{path}: {section}.{key} = "{old}" is deprecated, write {write}', ProfileDeprecation,
                           stacklevel=3)
     return out
 
@@ -317,6 +323,7 @@ def profile_from_dict(data: dict, path: str = "<profile>") -> Profile:
         ridge = c.number(d, "ridge", "descriptor", 1.0, positive=True)
     descriptor = Descriptor(
         kind=c.string(d, "kind", "descriptor", Descriptor.kind, choices=DESCRIPTOR_KINDS),
+        shrinkage=c.string(d, "shrinkage", "descriptor", Descriptor.shrinkage, choices=SHRINKAGE_ESTIMATORS),
         include_mean=c.boolean(d, "include_mean", "descriptor", Descriptor.include_mean),
         lags=c.integer(d, "lags", "descriptor", Descriptor.lags, lo=1),
         ridge=ridge,

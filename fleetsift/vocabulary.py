@@ -12,7 +12,10 @@ STREAM_KINDS = ("table", "video")
 # ROS 2 message times: the header stamp, or the time the bag received the message.
 STAMP_SOURCES = ("header", "receive")
 
-DESCRIPTOR_KINDS = ("ledoit_wolf", "oas", "rbf", "lagged")
+# What a window's SPD matrix is: a covariance of its channels, an RBF kernel between them, or a covariance of the
+# delay embedding (dynamics). The covariance ones are estimated with one of the SHRINKAGE estimators.
+DESCRIPTOR_KINDS = ("covariance", "rbf", "lagged")
+SHRINKAGE_ESTIMATORS = ("ledoit_wolf", "oas")
 # Every window is scored with each of these; [scoring] metric names the primary one (flags, attribution).
 METRICS = ("riemann", "logeuclid", "euclid")
 # What the SPD geometry computes: the scored metrics plus two more for comparison.
@@ -41,6 +44,8 @@ RUN_STATUSES = (OK, PARTIAL)
 # Profile keys and values renamed in 0.3, still read for one release with a deprecation message:
 # (section, old key) -> new key, and (section, key, old value) -> new value.
 DEPRECATED_KEYS = {("scoring", "top_channels"): "n_top_channels"}
-DEPRECATED_VALUES = {("scoring", "method", "mean"): "frechet_mean"}
+DEPRECATED_VALUES = {("scoring", "method", "mean"): {"method": "frechet_mean"},
+                     ("descriptor", "kind", "ledoit_wolf"): {"kind": "covariance", "shrinkage": "ledoit_wolf"},
+                     ("descriptor", "kind", "oas"): {"kind": "covariance", "shrinkage": "oas"}}
 # Read from stores written before 0.3, which called an unscored recording "quarantined".
 LEGACY_STATUSES = {"quarantined": UNSCORED}

@@ -341,12 +341,13 @@ def cmd_sweep(a) -> int:
     if a.json:
         print(json.dumps(out))
         return EXIT_OK
-    print(f"{'point':>5} {'varied':<9} {'window_s':>8} {'hop_s':>6} {'k':>3} {'kind':<12} {'metric':<10} "
-          f"{'ridge':>7} {'AUC':>6} {'+-':>6}")
+    print(f"{'point':>5} {'varied':<9} {'window_s':>8} {'hop_s':>6} {'k':>3} {'kind':<10} {'shrinkage':<11} "
+          f"{'metric':<10} {'ridge':>7} {'AUC':>6} {'+-':>6}")
     for r in out["points"]:
         auc = "  -   " if r["auc"] is None else f"{r['auc']:.3f}"
         se = "" if r["auc_se"] is None else f"{r['auc_se']:.3f}"
-        print(f"{r['point']:>5} {r['varied']:<9} {r['window_s']:>8g} {r['hop_s']:>6g} {r['k']:>3} {r['kind']:<12} "
+        print(f"{r['point']:>5} {r['varied']:<9} {r['window_s']:>8g} {r['hop_s']:>6g} {r['k']:>3} {r['kind']:<10} "
+              f"{r['shrinkage']:<11} "
               f"{r['metric']:<10} {r['ridge']:>7g} {auc:>6} {se:>6}" + (f"  {r['error']}" if r["error"] else ""))
     print(f"table {out['csv']}\nplot  {out['plot']}")
     return EXIT_OK

@@ -615,7 +615,7 @@ def write_report(store: str, run_id: str | None, out: str, as_of: int | None = N
                 f"<h3><span class='rank'>{rank}</span><a href='#{_anchor(r.recording_id)}'>{_e(r.recording_id)}</a>, "
                 f"{r.t_start_s:.1f}&ndash;{r.t_end_s:.1f} s &middot; window {int(r.window_index)} &middot; score "
                 f"{r.score:.2f} (threshold {_fmt(r.threshold, 'g')}) {_verdict_html(vd)}</h3><div class='row'>"
-                f"<div class='drivers'><b>Driving channels</b> (share of the deviation){drivers}</div>"
+                f"<div class='drivers'><b>Top channels</b> (share of the deviation){drivers}</div>"
                 f"<div>{''.join(media)}</div></div></div>")
 
         # --- timelines

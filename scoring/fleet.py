@@ -246,7 +246,7 @@ def _windows(recs, mats, valids, center, scale, blocks, ridges, windowing, descr
             continue
         for b, ix in blocks.items():
             d, g = desc.describe(wins[ok][:, :, ix], kind=descriptor.kind, include_mean=descriptor.include_mean,
-                                 lags=descriptor.lags, ridge=ridges[b])
+                                 lags=descriptor.lags, ridge=ridges[b], shrinkage=descriptor.shrinkage)
             parts[b].append(d)
             groups[b] = g
         owner.append(np.full(int(ok.sum()), i))

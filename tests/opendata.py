@@ -116,7 +116,8 @@ hop_s = {hop}
 max_gap_s = 0.35   # 3.5 nominal sample intervals
 
 [descriptor]
-kind = "ledoit_wolf"
+kind = "covariance"
+shrinkage = "ledoit_wolf"
 include_mean = true
 
 [scoring]

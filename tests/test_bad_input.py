@@ -292,8 +292,8 @@ def test_constant_channel_is_accepted_and_descriptors_stay_positive_definite():
     z = (x - center) / scale
     starts, w = window_starts(len(t), 50.0, 4.0, 2.0)
     wins, ok = cut_windows(z, valid, starts, w)
-    for kind in ("ledoit_wolf", "oas", "rbf", "lagged"):
-        d, _ = descriptors.describe(wins[ok], kind=kind, include_mean=True, lags=2, ridge=1e-6)
+    for kind, shrinkage in (("covariance", "ledoit_wolf"), ("covariance", "oas"), ("rbf", "oas"), ("lagged", "oas")):
+        d, _ = descriptors.describe(wins[ok], kind=kind, include_mean=True, lags=2, ridge=1e-6, shrinkage=shrinkage)
         # Outside reference: numpy.linalg.eigvalsh (LAPACK syevd).
         assert np.isfinite(d).all()
         assert np.linalg.eigvalsh(d).min() >= 1e-6 * (1 - 1e-9), kind

@@ -240,3 +240,14 @@ def test_space_and_bank_round_trip_through_arrays():
     assert b.run_id == "r9" and list(b.descriptors) == ["imu"]
     np.testing.assert_array_equal(b.descriptors["imu"], res.bank.descriptors["imu"])
     pd.testing.assert_series_equal(pd.Series(b.content), pd.Series(res.bank.content.astype(str)))
+
+
+def test_descriptor_shrinkage_reaches_the_fleet_step():
+    recs, _ = _recs(10, n_rec=4, fault_in=(1,))
+    out = {}
+    for kind in ("covariance", "lagged"):
+        for shrinkage in ("ledoit_wolf", "oas"):
+            res = _score(recs, desc=Descriptor(kind=kind, shrinkage=shrinkage, ridge=1e-3))
+            out[kind, shrinkage] = np.concatenate([w.scores["riemann"][w.valid] for w in res.windows])
+    assert not np.allclose(out["covariance", "ledoit_wolf"], out["covariance", "oas"])
+    assert not np.allclose(out["lagged", "ledoit_wolf"], out["lagged", "oas"])

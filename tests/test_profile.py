@@ -133,7 +133,7 @@ def test_renamed_profile_names_still_read_with_a_deprecation_message():
     with pytest.warns(ProfileDeprecation, match="scoring.top_channels is deprecated, call it scoring.n_top_channels"):
         old = parse_profile('[scoring]\ntop_channels = 5\n' + base)
     assert old.scoring.n_top_channels == 5
-    with pytest.warns(ProfileDeprecation, match='scoring.method = "mean" is deprecated, write "frechet_mean"'):
+    with pytest.warns(ProfileDeprecation, match='scoring.method = "mean" is deprecated, write method = "frechet_mean"'):
         assert parse_profile('[scoring]\nmethod = "mean"\n' + base).scoring.method == "frechet_mean"
     with pytest.raises(ProfileError, match="both names"):
         parse_profile('[scoring]\ntop_channels = 5\nn_top_channels = 4\n' + base)
@@ -141,3 +141,19 @@ def test_renamed_profile_names_still_read_with_a_deprecation_message():
         warnings.simplefilter("error")  # the new names read without a message
         assert parse_profile('[scoring]\nn_top_channels = 4\nmethod = "frechet_mean"\n' + base).scoring == \
             Scoring(n_top_channels=4, method="frechet_mean")
+
+
+def test_descriptor_kind_and_its_estimator_are_two_keys():
+    from fleetsift.profile import ProfileDeprecation
+
+    base = '[streams.imu]\nkind = "table"\nfile = "imu.csv"\nchannels = ["ax"]\n'
+    with pytest.warns(ProfileDeprecation, match='kind = "oas" is deprecated, write kind = "covariance", '
+                                                'shrinkage = "oas"'):
+        d = parse_profile('[descriptor]\nkind = "oas"\n' + base).descriptor
+    assert (d.kind, d.shrinkage) == ("covariance", "oas")
+    d = parse_profile('[descriptor]\nkind = "lagged"\nshrinkage = "oas"\n' + base).descriptor
+    assert (d.kind, d.shrinkage) == ("lagged", "oas")
+    with pytest.raises(ProfileError, match="shrinkage"):
+        parse_profile('[descriptor]\nkind = "oas"\nshrinkage = "ledoit_wolf"\n' + base)
+    with pytest.raises(ProfileError, match="descriptor.shrinkage"):
+        parse_profile('[descriptor]\nshrinkage = "rbf"\n' + base)

@@ -399,7 +399,7 @@ def test_report_prints_settings_threshold_units_and_iso_times(tmp_path):
     doc = parse(out)
     text = re.sub(r"\s+([,.])", r"\1", " ".join(" ".join(doc.text).split()))  # text split at the tags
     assert ("Settings: window 2 s, hop 1 s, clock 50 Hz, metric riemann, method knn, k 4, knn_stat mean, c 2, "
-            "descriptor ledoit_wolf.") in text
+            "descriptor covariance.") in text
     assert "median + c x robust sigma" in text and "robust sigma = 1.4826 x MAD" in text and "This run: c = 2." in text
     assert "finished 2026-01-01T02:00:00Z" in text
     (card,) = doc.cards

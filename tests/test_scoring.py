@@ -22,7 +22,7 @@ def fleet(seed=0, n_rec=4, per_rec=50, c=5, n_samples=120, outliers=()):
         W[r * per_rec + w, :, ch] *= 6.0
     rec = np.repeat(np.arange(n_rec), per_rec)
     t = np.tile(np.arange(per_rec) * 2.0 + 1.0, n_rec)
-    D, groups = de.describe(W, kind="ledoit_wolf", include_mean=True, ridge=1e-6)
+    D, groups = de.describe(W, kind="covariance", include_mean=True, ridge=1e-6)
     return D, rec, t, W, groups
 
 
@@ -148,7 +148,7 @@ def test_attribution_names_the_perturbed_channel():
     M = geometry.frechet_mean(D)
     Wp = W[:5].copy()
     Wp[:, :, 3] *= 4.0
-    Dp, g = de.describe(Wp, kind="ledoit_wolf", include_mean=True, ridge=1e-6)
+    Dp, g = de.describe(Wp, kind="covariance", include_mean=True, ridge=1e-6)
     shares = sc.attribute(Dp, M, g, 5)
     np.testing.assert_allclose(shares.sum(axis=1), 1.0, atol=1e-12)
     assert np.all(shares >= 0)

@@ -944,7 +944,8 @@ hop_s = 2.0           # hop between window starts (s)
 max_gap_s = 0.25      # a window straddling a gap in any stream longer than this is invalid
 
 [descriptor]
-kind = "ledoit_wolf"  # ledoit_wolf | oas | rbf | lagged
+kind = "covariance"   # covariance | rbf (kernel between channels) | lagged (covariance of the delay embedding)
+shrinkage = "ledoit_wolf"  # estimator of covariance and lagged: ledoit_wolf (Ledoit & Wolf 2004) | oas (Chen 2010)
 include_mean = true   # Gaussian embedding of window mean + covariance into SPD(c+1) (Calvo & Oller 1990)
 lags = 3              # lagged only
 ridge = "auto"        # noise floor added to every window covariance, in standardised units; "auto": the smallest
