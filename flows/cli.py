@@ -274,10 +274,11 @@ def cmd_evaluate(a) -> int:
         print(json.dumps(ev))
     else:
         rows = [(m, v, ev["auc_se"].get(m)) for m, v in ev["auc"].items()]
-        rows += [(b.replace("_", " "), v, ev["comparison_detectors_se"].get(b)) for b, v in ev.get("comparison_detectors", {}).items()]
+        rows += [(f"{b.replace('_', ' ')} (comparison detector)", v, ev["comparison_detectors_se"].get(b))
+                 for b, v in ev.get("comparison_detectors", {}).items()]
         for name, v, se in rows:
             auc = "n/a (one class only)" if v is None else f"{v:.3f}" + (f" +- {se:.3f}" if se is not None else "")
-            print(f"{name:<22} ROC AUC {auc}")
+            print(f"{name:<44} ROC AUC {auc}")
         if ev.get("comparison_detectors_reason"):
             print(f"comparison detectors: {ev['comparison_detectors_reason']}")
         print(f"windows {ev['n_windows']}, anomalous {ev['n_anomalous']}" + (f"; ROC plot {ev['plot']}"

@@ -941,7 +941,7 @@ PROFILE_TOML = """\
 rate_hz = 50.0        # common clock rate (Hz)
 window_s = 4.0        # window length (s)
 hop_s = 2.0           # hop between window starts (s)
-max_gap_s = 0.25      # a window straddling a gap in any stream longer than this is invalid
+max_gap_s = 0.25      # a window straddling a gap in any stream longer than this is left unscored
 
 [descriptor]
 kind = "covariance"   # covariance | rbf (kernel between channels) | lagged (covariance of the delay embedding)
