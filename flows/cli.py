@@ -355,7 +355,7 @@ def cmd_sweep(a) -> int:
 
 
 def cmd_history(a) -> int:
-    st, code = _guarded(lambda: _existing_store(a.store))
+    st, code = _guarded(lambda: _existing_store(a.store, runs=False))
     if code is not None:
         return code
     hist = st.runs_history()
@@ -545,7 +545,21 @@ def build_parser() -> argparse.ArgumentParser:
     return p
 
 
+def _show_deprecation(message, category, filename, lineno, file=None, line=None, _default=None):
+    """Deprecation messages (renamed profile keys, label columns) as one plain line, not a source excerpt."""
+    if issubclass(category, FutureWarning):
+        print(f"fleetsift: deprecated: {message}", file=sys.stderr)
+    else:
+        _default(message, category, filename, lineno, file, line)
+
+
 def main(argv: list[str] | None = None) -> int:
+    import functools
+    import warnings
+
+    if not getattr(warnings.showwarning, "fleetsift", False):  # once per process
+        warnings.showwarning = functools.partial(_show_deprecation, _default=warnings.showwarning)
+        warnings.showwarning.fleetsift = True
     args = build_parser().parse_args(argv)
     return int(args.fn(args) or 0)
 

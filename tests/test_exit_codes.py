@@ -151,3 +151,20 @@ def test_readme_exit_code_table_is_the_cli_table():
     rows = dict(re.findall(r"^\| (\d) \| (.+?) \|$", section, flags=re.M))
     assert {int(k): " ".join(v.split()) for k, v in rows.items()} == \
         {v["code"]: " ".join(v["meaning"].split()) for v in EXIT_CODES.values()}
+
+
+def test_deprecated_label_header_reads_with_one_plain_line(fleet, tmp_path, capsys):
+    import subprocess
+    import sys
+
+    from cli_run import cli_env
+
+    labels = tmp_path / "old.csv"
+    labels.write_text("recording,start_s,end_s\na,10,14\n")
+    code = ("import warnings; from fleetsift.flows.cli import main; warnings.simplefilter('default'); "
+            "from fleetsift.scoring.evaluation import read_labels; main(['history', '--store', %r]); "
+            "read_labels(%r)" % (str(fleet / "store-good"), str(labels)))
+    p = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, env=cli_env(), timeout=120)
+    assert p.returncode == 0, p.stderr
+    assert p.stderr.strip() == (f"fleetsift: deprecated: {labels}: label columns recording,start_s,end_s are "
+                                "deprecated: name them recording_id,t_start_s,t_end_s")
