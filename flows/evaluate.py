@@ -23,10 +23,10 @@ def prepare(inbox: str, store: str, profile_path: str | None = None, progress: b
             tables_fn=None, embed_fn=None) -> tuple[Profile, list[dict], list[dict]]:
     """Every recording's table and video stage outputs, computed or taken from the store's cache.
 
-    Returns (fleet profile, prepared [{"tables": .., "embed": ..}] for the recordings that made it, quarantined
+    Returns (fleet profile, prepared [{"tables": .., "embed": ..}] for the recordings that made it, unscored
     [{"recording_id", "reason"}]). ``tables_fn``/``embed_fn`` default to the plain stage functions; a flow passes
     its Prefect tasks. The recordings are prepared by the nightly run's own code (flows.night.prepare_recordings),
-    so the same recordings are quarantined for the same reasons.
+    so the same recordings are left unscored for the same reasons.
     """
     from fleetsift.flows import env
 

@@ -94,7 +94,7 @@ def prepare_recordings(tables: Callable[..., dict], embed: Callable[..., dict], 
 
     ``tables``/``embed`` are the stage callables (Prefect tasks with ``.submit`` when ``parallel``). A recording
     is read with its own profile laid over the fleet's (windowing, descriptor and scoring stay the fleet's), and
-    quarantined with the reason when that profile does not parse, a stage fails on it or it is shorter than one
+    left unscored with the reason when that profile does not parse, a stage fails on it or it is shorter than one
     window. Returns (prepared ``[{"tables", "embed"}]`` of the recordings to score, rows ``{recording id: its
     recordings-table row}`` for every recording, stats ``{"tables"|"embed": {"computed", "reused"}}``).
     """

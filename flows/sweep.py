@@ -234,7 +234,7 @@ def sweep_flow(inbox: str, store: str, labels: str, grid_path: str | None = None
     """Map the fleet step over the grid's points on the cached stage outputs; write sweep.csv and sweep.png."""
     started = time.time()
     read_labels(labels)  # fail before any work on a bad labels file
-    profile, prepared, quarantined = prepare(inbox, store, profile_path, tables_fn=flow_tasks.tables_task,
+    profile, prepared, unscored = prepare(inbox, store, profile_path, tables_fn=flow_tasks.tables_task,
                                              embed_fn=flow_tasks.embed_task)
     if not prepared:
         raise InputError(inbox, "recordings", "at least one readable recording", "none")
@@ -253,7 +253,7 @@ def sweep_flow(inbox: str, store: str, labels: str, grid_path: str | None = None
     emb_reused = sum(p["embed"]["reused"] for p in prepared)
     emb_computed = sum(p["embed"]["computed"] for p in prepared)
     return {"csv": str(out / "sweep.csv"), "plot": str(out / "sweep.png"), "design": grid["design"],
-            "points": rows, "quarantined": quarantined,
+            "points": rows, "unscored": unscored,
             "stages": {"tables": {"computed": len(prepared) - reused, "reused": reused},
                        "embed": {"computed": emb_computed, "reused": emb_reused}},
             "elapsed_s": round(time.time() - started, 2)}

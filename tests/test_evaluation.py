@@ -1,5 +1,5 @@
 """Evaluation: ROC AUC and its standard error against outside references, window labels, the descriptors the
-outlier baselines read, the parameter sweep; and (slow) `fleetsift evaluate` / `fleetsift sweep` on a demo fleet."""
+comparison detectors read, the parameter sweep; and (slow) `fleetsift evaluate` / `fleetsift sweep` on a demo fleet."""
 
 import json
 import os
@@ -98,7 +98,7 @@ def test_read_labels_errors(tmp_path, text, field):
     assert field in str(e.value) and str(p) in str(e.value)
 
 
-# ------------------------------------------------------------------------------------ outlier baselines
+# ------------------------------------------------------------------------------------ comparison detectors
 
 def _spd(rng, n, d, scale=1.0):
     A = rng.normal(size=(n, d, 3 * d)) * scale
