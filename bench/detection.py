@@ -42,7 +42,7 @@ VARIANTS = {
     "default": "",
     "knn in windows": "[scoring]\nknn_unit = \"window\"\n",
     "density (LOF)": "[scoring]\nmethod = \"density\"\n",
-    "distance to mean": "[scoring]\nmethod = \"mean\"\n",
+    "distance to mean": "[scoring]\nmethod = \"frechet_mean\"\n",
     "batch only": "[baseline]\nsource = \"batch\"\n",
     "ridge 0.3": "[descriptor]\nridge = 0.3\n",
     "before": "[scoring]\nknn_unit = \"window\"\n[baseline]\nsource = \"batch\"\n[descriptor]\nridge = 0.3\n"
@@ -74,14 +74,14 @@ def run_pairs(seeds, variants, recurring: int, work: Path) -> pd.DataFrame:
                 evs = opendata.score_nights(nights, base / "store", comparison=vname == "default")
                 for i, (n, ev) in enumerate(zip(nights, evs)):
                     allw = evaluate_store(str(base / "store"), ev["run_id"], str(_all_windows_labels(n)),
-                                          baselines=False)
+                                          comparison=False)
                     row = {"seed": seed, "normal": normal, "anomaly": anomaly, "variant": vname, "night": i + 1,
                            "n_windows": ev["n_windows"], "n_anomalous": ev["n_anomalous"],
                            "source": ev["baseline"]["source"], "riemann_all": allw["auc"]["riemann"]}
                     for m in ("riemann", "logeuclid", "euclid"):
                         row[m], row[f"{m}_se"] = ev["auc"][m], ev["auc_se"][m]
                     for d in ("isolation_forest", "local_outlier_factor"):
-                        row[d], row[f"{d}_se"] = ev["baselines"].get(d), ev["baselines_se"].get(d)
+                        row[d], row[f"{d}_se"] = ev["comparison_detectors"].get(d), ev["comparison_detectors_se"].get(d)
                     rows.append(row)
                 shutil.rmtree(base, ignore_errors=True)
             print(f"  seed {seed} {normal} -> {anomaly} done", file=sys.stderr, flush=True)
@@ -142,12 +142,12 @@ def run_demo(variants, work: Path) -> pd.DataFrame:
             else None
         t0 = time.time()
         res = night.run_night(plain, inbox=str(inbox), store=str(store), profile_path=str(prof), progress=True)
-        ev = evaluate_store(str(store), res["run_id"], str(inbox / "labels.csv"), baselines=vname == "default")
+        ev = evaluate_store(str(store), res["run_id"], str(inbox / "labels.csv"), comparison=vname == "default")
         if not (work / "demo-cache").exists():
             shutil.copytree(store / "cache", work / "demo-cache", ignore=shutil.ignore_patterns("score"))
         rows.append({"variant": vname, **{m: ev["auc"][m] for m in ev["auc"]},
                      **{f"{m}_se": ev["auc_se"][m] for m in ev["auc_se"]},
-                     "isolation_forest": ev["baselines"].get("isolation_forest"),
+                     "isolation_forest": ev["comparison_detectors"].get("isolation_forest"),
                      "n_windows": ev["n_windows"], "n_anomalous": ev["n_anomalous"],
                      "seconds": round(time.time() - t0, 1)})
     return pd.DataFrame(rows)
@@ -178,10 +178,10 @@ def run_demo_history(work: Path) -> dict:
     out = {}
     for name, inbox in (("night 1 (seed 8)", n1), ("night 2 (sample_raw)", n2)):
         res = night.run_night(plain, inbox=str(inbox), store=str(store), progress=True)
-        ev = evaluate_store(str(store), res["run_id"], str(inbox / "labels.csv"), baselines=True)
+        ev = evaluate_store(str(store), res["run_id"], str(inbox / "labels.csv"), comparison=True)
         info = res["score"]["baseline"]
         out[name] = {**ev["auc"], "riemann_se": ev["auc_se"]["riemann"],
-                     "isolation_forest": ev["baselines"].get("isolation_forest"),
+                     "isolation_forest": ev["comparison_detectors"].get("isolation_forest"),
                      "source": info["source"] + (" + tonight" if info["source"] == "history" and info["tonight"] else ""),
                      "n_windows": ev["n_windows"], "n_anomalous": ev["n_anomalous"]}
     shutil.copytree(store / "cache", work / "demo-history-cache", ignore=shutil.ignore_patterns("score"),

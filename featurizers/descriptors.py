@@ -11,7 +11,7 @@ import numpy as np
 
 from fleetsift.errors import InputError
 from fleetsift.profile import Descriptor
-from fleetsift.vocabulary import DESCRIPTOR_KINDS
+from fleetsift.vocabulary import DESCRIPTOR_KINDS, SHRINKAGE_ESTIMATORS
 
 __all__ = ["RIDGE_RANGE", "baseline_ridge", "ledoit_wolf", "oas", "rbf_kernel_matrix", "lagged_covariance",
            "lagged_groups", "gaussian_embedding", "describe"]
@@ -142,7 +142,7 @@ def _delay_embed(X: np.ndarray, lags: int) -> np.ndarray:
     return np.concatenate([X[:, lags - l:n - l, :] for l in range(lags + 1)], axis=2)
 
 
-def lagged_covariance(X, lags: int = Descriptor.lags, shrinkage: str = "ledoit_wolf") -> np.ndarray:
+def lagged_covariance(X, lags: int = Descriptor.lags, shrinkage: str = Descriptor.shrinkage) -> np.ndarray:
     """Shrunk covariance of the delay embedding ``[x(t), x(t-1), ..., x(t-L)]`` -> ``(w, c(L+1), c(L+1))``.
 
     Captures the windows' dynamics (auto- and cross-covariances up to lag L) as well as their spread. Rows are
@@ -154,11 +154,11 @@ def lagged_covariance(X, lags: int = Descriptor.lags, shrinkage: str = "ledoit_w
         raise InputError(_SRC, "lags", "an integer >= 0", lags)
     X = _windows(X, min_samples=lags + 2)
     E = _delay_embed(X, lags)
-    if shrinkage == "ledoit_wolf":
+    if shrinkage == SHRINKAGE_ESTIMATORS[0]:
         return ledoit_wolf(E)
-    if shrinkage == "oas":
+    if shrinkage == SHRINKAGE_ESTIMATORS[1]:
         return oas(E)
-    raise InputError(_SRC, "shrinkage", "ledoit_wolf or oas", repr(shrinkage))
+    raise InputError(_SRC, "shrinkage", f"one of {SHRINKAGE_ESTIMATORS}", repr(shrinkage))
 
 
 def gaussian_embedding(mean, cov) -> np.ndarray:
@@ -211,12 +211,13 @@ def baseline_ridge(samples) -> float:
 
 
 def describe(X, kind: str = Descriptor.kind, include_mean: bool = Descriptor.include_mean, lags: int = Descriptor.lags,
-             ridge: float | str = Descriptor.ridge):
+             ridge: float | str = Descriptor.ridge, shrinkage: str = Descriptor.shrinkage):
     """SPD descriptor of every window -> ``(descriptors (n, d, d), groups (d,))``.
 
-    ``kind``: ``"ledoit_wolf"`` / ``"oas"`` (shrunk covariance, c x c), ``"rbf"`` (kernel between channels,
-    :func:`rbf_kernel_matrix` with the median heuristic), ``"lagged"`` (:func:`lagged_covariance` with
-    Ledoit-Wolf shrinkage, c(L+1) x c(L+1)). ``ridge * I`` is added to every matrix so each is strictly positive
+    ``kind``: ``"covariance"`` (shrunk covariance, c x c), ``"rbf"`` (kernel between channels,
+    :func:`rbf_kernel_matrix` with the median heuristic), ``"lagged"`` (:func:`lagged_covariance`,
+    c(L+1) x c(L+1)); ``shrinkage`` (``"ledoit_wolf"``, Ledoit & Wolf 2004, or ``"oas"``, Chen et al. 2010) is the
+    estimator of both covariance kinds. ``ridge * I`` is added to every matrix so each is strictly positive
     definite (smallest eigenvalue >= ridge) even for windows with more channels than samples, constant or
     duplicated channels; ``ridge="auto"`` takes :func:`baseline_ridge` of the windows' own samples (the windows
     are then their own baseline).
@@ -229,6 +230,8 @@ def describe(X, kind: str = Descriptor.kind, include_mean: bool = Descriptor.inc
     """
     if kind not in DESCRIPTOR_KINDS:
         raise InputError(_SRC, "kind", f"one of {DESCRIPTOR_KINDS}", repr(kind))
+    if shrinkage not in SHRINKAGE_ESTIMATORS:
+        raise InputError(_SRC, "shrinkage", f"one of {SHRINKAGE_ESTIMATORS}", repr(shrinkage))
     X = _windows(X, min_samples=(int(lags) + 2) if kind == "lagged" else 2)
     if isinstance(ridge, str):
         if ridge != "auto":
@@ -238,14 +241,13 @@ def describe(X, kind: str = Descriptor.kind, include_mean: bool = Descriptor.inc
     if not np.isfinite(ridge) or ridge <= 0:
         raise InputError(_SRC, "ridge", "a positive finite number", ridge)
     c = X.shape[2]
-    if kind == "ledoit_wolf":
-        C, mu, groups = ledoit_wolf(X), X.mean(axis=1), np.arange(c)
-    elif kind == "oas":
-        C, mu, groups = oas(X), X.mean(axis=1), np.arange(c)
+    if kind == DESCRIPTOR_KINDS[0]:
+        C = ledoit_wolf(X) if shrinkage == SHRINKAGE_ESTIMATORS[0] else oas(X)
+        mu, groups = X.mean(axis=1), np.arange(c)
     elif kind == "rbf":
         C, mu, groups = rbf_kernel_matrix(X, None, ridge=0.0), X.mean(axis=1), np.arange(c)
     else:
-        C = lagged_covariance(X, lags=lags)
+        C = lagged_covariance(X, lags=lags, shrinkage=shrinkage)
         mu = _delay_embed(X, int(lags)).mean(axis=1)
         groups = lagged_groups(c, lags)
     C = 0.5 * (C + np.swapaxes(C, 1, 2))

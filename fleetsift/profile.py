@@ -11,13 +11,15 @@ import hashlib
 import json
 import math
 import tomllib
+import warnings
 from dataclasses import asdict, dataclass, field
 from pathlib import Path
 from typing import Any
 
 from fleetsift.errors import ProfileError
-from fleetsift.vocabulary import (BASELINE_SOURCES, DESCRIPTOR_KINDS, KNN_STATS, KNN_UNITS, METRICS, PRECISIONS,
-                                  RUNTIMES, SCORING_METHODS, STAMP_SOURCES, STREAM_KINDS, TIME_UNITS)
+from fleetsift.vocabulary import (BASELINE_SOURCES, DEPRECATED_KEYS, DEPRECATED_VALUES, DESCRIPTOR_KINDS, KNN_STATS,
+                                  KNN_UNITS, METRICS, PRECISIONS, RUNTIMES, SCORING_METHODS, SHRINKAGE_ESTIMATORS,
+                                  STAMP_SOURCES, STREAM_KINDS, TIME_UNITS)
 
 PROFILE_NAME = "profile.toml"
 
@@ -44,6 +46,8 @@ class TableStream:
     instance: int = 0  # ULog multi-instance topics
     stamp: str = "header"  # ROS 2: header stamp or receive time
     kind: str = "table"
+    # Physical unit of each channel (after calibration), shown on the report's traces; optional per channel.
+    units: dict[str, str] = field(default_factory=dict)
 
 
 @dataclass(frozen=True)
@@ -79,7 +83,8 @@ class Windowing:
 
 @dataclass(frozen=True)
 class Descriptor:
-    kind: str = "ledoit_wolf"
+    kind: str = "covariance"
+    shrinkage: str = "ledoit_wolf"  # estimator of the covariance kinds (covariance, lagged)
     include_mean: bool = True
     lags: int = 3
     # A noise floor added to every window covariance, in standardised units, or "auto": the smallest eigenvalue
@@ -102,7 +107,7 @@ class Scoring:
     exclusion_s: float = 30.0
     trim_fraction: float = 0.1
     threshold_c: float = 3.0
-    top_channels: int = 3
+    n_top_channels: int = 3  # how many channels each flagged window names (windows.top_channels)
 
 
 @dataclass(frozen=True)
@@ -151,7 +156,11 @@ class Profile:
     def section(self, name: str) -> dict[str, Any]:
         """The plain-data content of one section, the unit that cache keys are built from."""
         if name.startswith("streams."):
-            return _plain(asdict(self.streams[name.split(".", 1)[1]]))
+            sec = _plain(asdict(self.streams[name.split(".", 1)[1]]))
+            # Units only label the report's traces: no stage reads them, so they stay out of every cache key
+            # (the report's own cache key includes them, flows/report.py).
+            sec.pop("units", None)
+            return sec
         return _plain(asdict(getattr(self, name)))
 
     def to_dict(self) -> dict[str, Any]:
@@ -277,8 +286,39 @@ def parse_profile(text: str, path: str = "<profile>") -> Profile:
     return profile_from_dict(_load_toml(text, path), path)
 
 
+class ProfileDeprecation(FutureWarning):
+    """A profile key or value renamed in this release: still read, with this message, for one release."""
+
+
+def _renamed(data: dict, path: str) -> dict:
+    """``data`` with deprecated keys and values under their new names, warning once per use."""
+    out = dict(data)
+    for (section, old), new in DEPRECATED_KEYS.items():
+        sec = out.get(section)
+        if isinstance(sec, dict) and old in sec:
+            if new in sec:
+                raise ProfileError(path, f"{section}.{old}", f"only its new name {section}.{new}", "both names")
+            sec = {(new if k == old else k): v for k, v in sec.items()}
+            out[section] = sec
+            warnings.warn(f"{path}: {section}.{old} is deprecated, call it {section}.{new}", ProfileDeprecation,
+                          stacklevel=3)
+    for (section, key, old), new in DEPRECATED_VALUES.items():
+        sec = out.get(section)
+        if isinstance(sec, dict) and sec.get(key) == old:
+            clash = [k for k in new if k != key and k in sec and sec[k] != new[k]]
+            if clash:
+                raise ProfileError(path, f"{section}.{clash[0]}", f'{new[clash[0]]!r} with {key} = "{old}"',
+                                   repr(sec[clash[0]]))
+            out[section] = {**sec, **new}
+            write = ", ".join(f'{k} = "{v}"' for k, v in new.items())
+            warnings.warn(f'{path}: {section}.{key} = "{old}" is deprecated, write {write}', ProfileDeprecation,
+                          stacklevel=3)
+    return out
+
+
 def profile_from_dict(data: dict, path: str = "<profile>") -> Profile:
-    """Validate already-parsed profile data."""
+    """Validate already-parsed profile data (deprecated names are read under their new ones, with a warning)."""
+    data = _renamed(data, path)
     c = _Checker(path)
     c.no_unknown(data, {"windowing", "descriptor", "scoring", "baseline", "streams", "storage"}, "")
 
@@ -302,6 +342,7 @@ def profile_from_dict(data: dict, path: str = "<profile>") -> Profile:
         ridge = c.number(d, "ridge", "descriptor", 1.0, positive=True)
     descriptor = Descriptor(
         kind=c.string(d, "kind", "descriptor", Descriptor.kind, choices=DESCRIPTOR_KINDS),
+        shrinkage=c.string(d, "shrinkage", "descriptor", Descriptor.shrinkage, choices=SHRINKAGE_ESTIMATORS),
         include_mean=c.boolean(d, "include_mean", "descriptor", Descriptor.include_mean),
         lags=c.integer(d, "lags", "descriptor", Descriptor.lags, lo=1),
         ridge=ridge,
@@ -319,7 +360,7 @@ def profile_from_dict(data: dict, path: str = "<profile>") -> Profile:
         exclusion_s=c.number(s, "exclusion_s", "scoring", Scoring.exclusion_s, nonneg=True, finite=False),
         trim_fraction=c.number(s, "trim_fraction", "scoring", Scoring.trim_fraction, lo=0.0, hi=0.5),
         threshold_c=c.number(s, "threshold_c", "scoring", Scoring.threshold_c, positive=True),
-        top_channels=c.integer(s, "top_channels", "scoring", Scoring.top_channels, lo=1),
+        n_top_channels=c.integer(s, "n_top_channels", "scoring", Scoring.n_top_channels, lo=1),
     )
 
     b = c.table(data.get("baseline", {}), "baseline")
@@ -375,7 +416,7 @@ def profile_from_dict(data: dict, path: str = "<profile>") -> Profile:
 
 def _parse_table(c: _Checker, name: str, st: dict, where: str) -> TableStream:
     allowed = {"kind", "file", "time_column", "time_unit", "channels", "fields", "clock_offset_s", "calibration",
-               "topic", "instance", "stamp"}
+               "topic", "instance", "stamp", "units"}
     c.no_unknown(st, allowed, where)
     channels = c.strings(st, "channels", where, ())
     fields = c.strings(st, "fields", where, ())
@@ -399,6 +440,11 @@ def _parse_table(c: _Checker, name: str, st: dict, where: str) -> TableStream:
         if scale == 0:
             c.fail(f"{cw}.scale", "a non-zero number", scale)
         cal[ch] = Calibration(bias=c.number(spec, "bias", cw, 0.0), scale=scale)
+    units_raw = c.table(st.get("units", {}), f"{where}.units")
+    for ch in units_raw:
+        if channels and ch not in channels:
+            c.fail(f"{where}.units.{ch}", f"a unit for one of the channels {list(channels)}", repr(ch))
+        c.string(units_raw, ch, f"{where}.units", None)
     return TableStream(
         name=name,
         file=c.relative_file(st, "file", where),
@@ -411,6 +457,7 @@ def _parse_table(c: _Checker, name: str, st: dict, where: str) -> TableStream:
         topic=topic,
         instance=c.integer(st, "instance", where, 0, lo=0),
         stamp=c.string(st, "stamp", where, "header", choices=STAMP_SOURCES),
+        units=dict(units_raw),
     )
 
 

@@ -39,18 +39,19 @@ from fleetsift import __version__, codebase
 from fleetsift.errors import StoreLockedError
 from fleetsift.location import ObjectPath, delta_options, location, resolved, write_atomic
 from fleetsift.profile import Storage
+from fleetsift.vocabulary import LEGACY_STATUSES
 
 TABLE_SCHEMAS: dict[str, pa.Schema] = {
     "runs": pa.schema([
         ("run_id", pa.string()),
         ("started_at", pa.timestamp("us", tz="UTC")),
         ("finished_at", pa.timestamp("us", tz="UTC")),
-        ("code_version", pa.string()),
+        ("code_version", pa.string()),  # deprecated: the fleetsift package version, see fleetsift_version
         ("profile_hash", pa.string()),
         ("baseline_id", pa.string()),
         ("n_recordings", pa.int64()),
         ("n_scored", pa.int64()),
-        ("n_quarantined", pa.int64()),
+        ("n_unscored", pa.int64()),
         ("n_windows", pa.int64()),
         ("n_flagged", pa.int64()),
         ("status", pa.string()),
@@ -60,6 +61,7 @@ TABLE_SCHEMAS: dict[str, pa.Schema] = {
         ("n_references", pa.int64()),
         ("space_key", pa.string()),
         ("score_output", pa.string()),  # the score stage's bank, relative to the store: later nights' references
+        ("fleetsift_version", pa.string()),  # added in 0.3: the package version that wrote the run
     ]),
     "recordings": pa.schema([
         ("run_id", pa.string()),
@@ -386,6 +388,13 @@ class Store:
         for f in TABLE_SCHEMAS[table]:  # a version written before a column was added
             if f.name not in df.columns:
                 df[f.name] = None
+        # Stores written before 0.3 said "quarantined" for an unscored recording.
+        if "n_quarantined" in df.columns:
+            df["n_unscored"] = df["n_unscored"].fillna(df.pop("n_quarantined"))
+        if table == "runs":
+            df["fleetsift_version"] = df["fleetsift_version"].fillna(df["code_version"])
+        if "status" in df.columns:
+            df["status"] = df["status"].replace(LEGACY_STATUSES)
         return df
 
     def run_ids(self, table: str) -> set[str]:
@@ -422,7 +431,7 @@ class Store:
     def runs_history(self) -> pd.DataFrame:
         """One row per run with the `runs` table version that committed it (for --as-of)."""
 
-        cols = ["version", "run_id", "finished_at", "n_recordings", "n_windows", "n_flagged", "n_quarantined",
+        cols = ["version", "run_id", "finished_at", "n_recordings", "n_windows", "n_flagged", "n_unscored",
                 "status", "baseline_id"]
         if not self.has_table("runs"):
             return pd.DataFrame(columns=cols)

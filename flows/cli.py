@@ -5,15 +5,19 @@ from __future__ import annotations
 import argparse
 import json
 import math
+import os
 import sys
 import tempfile
 from pathlib import Path
 
 from fleetsift.flows import env
 from fleetsift.safety import SAFETY_NOTE
-from fleetsift.vocabulary import VERDICTS
+from fleetsift.errors import EXIT_CODES
+from fleetsift.vocabulary import SCORED, UNSCORED, VERDICTS
 
-EXIT_OK, EXIT_ERROR, EXIT_USAGE, EXIT_QUARANTINED, EXIT_LOCKED = 0, 1, 2, 3, 4
+EXIT_OK, EXIT_ERROR, EXIT_USAGE, EXIT_UNSCORED, EXIT_LOCKED, EXIT_NO_SERVER = (EXIT_CODES[k]["code"] for k in (
+    "ok", "input_error", "usage", "unscored", "locked", "no_server"))
+EXIT_EPILOG = "exit codes: " + "; ".join(f"{v['code']} {v['meaning']}" for v in EXIT_CODES.values())
 
 
 def _num(x):
@@ -35,12 +39,14 @@ def summarise(result: dict, metric: str) -> dict:
         w = w[w["metric"] == metric]
         for rid, g in w.groupby("recording_id"):
             sc = g["score"].dropna()
-            per[rid] = {"n_windows": int(len(sc)), "n_invalid_windows": int(g["score"].isna().sum()),
+            per[rid] = {"n_windows": int(len(sc)), "n_unscored_windows": int(g["score"].isna().sum()),
                         "max_score": _num(sc.max()) if len(sc) else None, "n_flagged": int(g["flagged"].sum())}
+    unscored = [{"recording_id": r["recording_id"], "reason": r["reason"]}
+                for r in result["recordings"] if r["status"] == UNSCORED]
     recs = []
     for r in result["recordings"]:
         item = {"recording_id": r["recording_id"], "status": r["status"]}
-        if r["status"] == "scored":
+        if r["status"] == SCORED:
             item.update(per.get(r["recording_id"], {"n_windows": 0, "max_score": None, "n_flagged": 0}))
             item["duration_s"] = _num(r["duration_s"])
         else:
@@ -49,7 +55,10 @@ def summarise(result: dict, metric: str) -> dict:
     return {
         "run_id": result["run_id"],
         "store": result["store"],
+        # The runs table's version that committed this run (as `fleetsift history` and `report --as-of` use it);
+        # each table has its own version, all in table_versions (for DeltaTable(STORE/TABLE, version=...)).
         "store_version": result["store_version"],
+        "table_versions": result.get("table_versions"),
         "baseline_id": (result.get("score") or {}).get("baseline_id"),
         # Which references the scores were measured against: earlier nights (history), tonight's batch, or chosen
         # recordings; their count, recordings and the runs they come from.
@@ -57,24 +66,25 @@ def summarise(result: dict, metric: str) -> dict:
         "metric": metric,
         "thresholds": (result.get("score") or {}).get("thresholds"),
         "recordings": recs,
-        "quarantined": [{"recording_id": r["recording_id"], "reason": r["reason"]}
-                        for r in result["recordings"] if r["status"] == "quarantined"],
+        "unscored": unscored,
+        "quarantined": unscored,  # deprecated name of "unscored", removed in the next release
         "stages": result["stages"],
         # Of tonight's computed embeddings: frames sampled, those skipped as unchanged, damaged spans skipped.
         "embed_frames": result.get("embed_frames", {"frames": 0, "frames_skipped": 0, "damaged_spans": 0}),
         "orchestrator": result.get("orchestrator", "prefect"),
         "elapsed_s": result["elapsed_s"],
         "report": result.get("report"),
-        "note": SAFETY_NOTE,
+        "safety_note": SAFETY_NOTE,
+        "note": SAFETY_NOTE,  # deprecated name of "safety_note", removed in the next release
     }
 
 
 def print_table(summary: dict, out=sys.stdout) -> None:
-    print(f"run {summary['run_id']}  store version {summary['store_version']}  baseline {summary['baseline_id']}  "
+    print(f"run {summary['run_id']}  runs-table version {summary['store_version']}  baseline {summary['baseline_id']}  "
           f"metric {summary['metric']}", file=out)
     print(f"{'recording':<28} {'status':<12} {'windows':>7} {'flagged':>7} {'max score':>10}", file=out)
     for r in summary["recordings"]:
-        if r["status"] == "scored":
+        if r["status"] == SCORED:
             ms = "-" if r.get("max_score") is None else f"{r['max_score']:.3f}"
             print(f"{r['recording_id']:<28} {r['status']:<12} {r['n_windows']:>7} {r['n_flagged']:>7} {ms:>10}",
                   file=out)
@@ -103,11 +113,15 @@ def do_run(inbox: str, store: str, profile: str | None, runner: str, dask_addres
     without starting Prefect, whose start-up would be most of the time; as soon as one recording needs work
     (checked before any write) the Prefect flow runs instead.
     """
+    from fleetsift.flows import night
+
+    storage = storage_settings(inbox, profile)
+    # A missing inbox or a profile that does not parse is reported before any store folder is made.
+    night.fleet_profile(night.discover_inbox(inbox, storage), profile)
     env.configure(store)
     from fleetsift.location import location, resolved
     from fleetsift.store import Store
 
-    storage = storage_settings(inbox, profile)
     inbox = str(resolved(inbox, storage))
     st = Store(store, storage).init()
     with st.lock(wait_s=wait_s):
@@ -115,7 +129,6 @@ def do_run(inbox: str, store: str, profile: str | None, runner: str, dask_addres
         removed = st.remove_orphans()
         if any(removed.values()):
             print(f"removed rows of unfinished runs: {removed}", file=sys.stderr)
-        from fleetsift.flows import night
 
         if rebuild:  # a misspelt name is refused before anything starts
             night.rebuild_plan(night.fleet_profile(location(inbox), profile), tuple(rebuild))
@@ -196,34 +209,58 @@ def _warm_backbones(st, inbox: str, profile: str | None) -> None:
             for stream in fleet.video_streams():
                 if stream.precision == "float32":  # int8 calibrates on the fleet's frames: left to the task
                     stages._backbone(stream, st)
-        except Exception:  # noqa: BLE001 - the embed task meets the same error and quarantines with it
+        except Exception:  # noqa: BLE001 - the embed task meets the same error and reports it
             pass
 
     threading.Thread(target=load, name="fleetsift-warm-backbones", daemon=True).start()
 
 
-def cmd_run(a) -> int:
+def _guarded(fn):
+    """Run ``fn()``; a locked store exits 4 and unusable input exits 1, each with one line and no traceback."""
     from fleetsift.errors import InputError, StoreLockedError
-    from fleetsift.profile import load_profile
 
     try:
-        result = do_run(a.inbox, a.store, a.profile, a.runner, a.dask_address, a.wait, progress=not a.json,
-                        orchestrate=a.orchestrate, rebuild=tuple(a.rebuild or ()))
+        return fn(), None
     except StoreLockedError as e:
         print(f"fleetsift: {e}", file=sys.stderr)
-        return EXIT_LOCKED
+        return None, EXIT_LOCKED
     except InputError as e:
         print(f"fleetsift: {e}", file=sys.stderr)
-        return EXIT_ERROR
+        return None, EXIT_ERROR
+
+
+def _existing_store(store: str, runs: bool = True):
+    """The store at ``store``, or InputError when it holds no committed run (with ``runs=False``: none of the
+    store's tables nor its stage cache). Nothing is created."""
+    from fleetsift.errors import InputError
+    from fleetsift.store import TABLES, Store
+
+    st = Store(store)
+    found = (st.root / "runs" / "_delta_log").exists() if runs else (
+        (st.root / "cache").is_dir() or any((st.root / t / "_delta_log").exists() for t in TABLES))
+    if not found:
+        raise InputError(st.root, "store", "a results store with committed runs" if runs else "a results store",
+                         "no such folder" if not st.root.exists() else "no runs table" if runs else "no store")
+    return st
+
+
+def cmd_run(a) -> int:
+    from fleetsift.profile import load_profile
+
+    result, code = _guarded(lambda: do_run(a.inbox, a.store, a.profile, a.runner, a.dask_address, a.wait,
+                                           progress=not a.json, orchestrate=a.orchestrate,
+                                           rebuild=tuple(a.rebuild or ())))
+    if code is not None:
+        return code
     metric = load_profile(result["profile"]).scoring.metric
     summary = summarise(result, metric)
     if a.json:
         print(json.dumps(summary))
     else:
         print_table(summary)
-    for q in summary["quarantined"]:
-        print(f"quarantined {q['recording_id']}: {q['reason']}", file=sys.stderr)
-    return EXIT_QUARANTINED if summary["quarantined"] else EXIT_OK
+    for q in summary["unscored"]:
+        print(f"unscored {q['recording_id']}: {q['reason']}", file=sys.stderr)
+    return EXIT_UNSCORED if summary["unscored"] else EXIT_OK
 
 
 DEMO_BAG_RECORDING = "rover-02-zone-z"
@@ -252,7 +289,7 @@ def cmd_demo(a) -> int:
         ev = evaluate_store(str(store), result["run_id"], str(labels))
         print("ROC AUC against the demo labels: " + ", ".join(f"{m} {v:.3f}" for m, v in ev["auc"].items()
                                                              if v is not None))
-    return EXIT_QUARANTINED if summary["quarantined"] else EXIT_OK
+    return EXIT_UNSCORED if summary["unscored"] else EXIT_OK
 
 
 def cmd_make_sample(a) -> int:
@@ -264,53 +301,54 @@ def cmd_make_sample(a) -> int:
 
 
 def cmd_evaluate(a) -> int:
-    from fleetsift.errors import InputError, StoreLockedError
+    from fleetsift.errors import InputError
 
-    store = a.store or tempfile.mkdtemp(prefix="fleetsift-eval-")
-    try:
+    if a.no_baselines_deprecated:
+        print("fleetsift: --no-baselines is deprecated: use --no-comparison-detectors", file=sys.stderr)
+
+    def go():
+        if a.labels and not Path(a.labels).is_file():  # before an inbox is scored for nothing
+            raise InputError(a.labels, "--labels", "a labels CSV file", "no such file")
+        store = a.store or tempfile.mkdtemp(prefix="fleetsift-eval-")
         result = do_run(a.inbox, store, a.profile, "local", None, a.wait, progress=not a.json, report=False)
         from fleetsift.flows.evaluate import evaluate_store
 
         plot = a.plot or str(Path(store) / "reports" / f"{result['run_id']}-roc.png")
-        ev = evaluate_store(store, result["run_id"], a.labels, plot=plot, baselines=not a.no_baselines,
-                            reviews_store=a.reviews_from)
-    except (InputError, StoreLockedError) as e:
-        print(f"fleetsift: {e}", file=sys.stderr)
-        return EXIT_ERROR
+        return evaluate_store(store, result["run_id"], a.labels, plot=plot,
+                              comparison=not (a.no_comparison or a.no_baselines_deprecated),
+                              reviews_store=a.reviews_from)
+
+    ev, code = _guarded(go)
+    if code is not None:
+        return code
     if a.json:
         print(json.dumps(ev))
     else:
         rows = [(m, v, ev["auc_se"].get(m)) for m, v in ev["auc"].items()]
-        rows += [(b.replace("_", " "), v, ev["baselines_se"].get(b)) for b, v in ev.get("baselines", {}).items()]
+        rows += [(f"{b.replace('_', ' ')} (comparison detector)", v, ev["comparison_detectors_se"].get(b))
+                 for b, v in ev.get("comparison_detectors", {}).items()]
         for name, v, se in rows:
             auc = "n/a (one class only)" if v is None else f"{v:.3f}" + (f" +- {se:.3f}" if se is not None else "")
-            print(f"{name:<22} ROC AUC {auc}")
-        if ev.get("baselines_note"):
-            print(f"outlier baselines: {ev['baselines_note']}")
+            print(f"{name:<44} ROC AUC {auc}")
+        if ev.get("comparison_detectors_reason"):
+            print(f"comparison detectors: {ev['comparison_detectors_reason']}")
         print(f"windows {ev['n_windows']}, anomalous {ev['n_anomalous']}" + (f"; ROC plot {ev['plot']}"
                                                                              if ev.get("plot") else ""))
     return EXIT_OK
 
 
 def cmd_review(a) -> int:
-    from fleetsift.errors import InputError, StoreLockedError
     from fleetsift.flows.review import record_review
-    from fleetsift.store import Store
 
-    st = Store(a.store)
-    if not (st.root / "runs" / "_delta_log").exists():
-        print(f"fleetsift: {st.root}: store: expected a results store with committed runs, got none", file=sys.stderr)
-        return EXIT_ERROR
-    try:
+    def go():
+        st = _existing_store(a.store)
         with st.lock(wait_s=a.wait):
-            rows = record_review(str(st.root), a.run, a.verdict, windows=a.window or [], recordings=a.recording or [],
-                                 note=a.note or "", reviewer=a.reviewer)
-    except StoreLockedError as e:
-        print(f"fleetsift: {e}", file=sys.stderr)
-        return EXIT_LOCKED
-    except InputError as e:
-        print(f"fleetsift: {e}", file=sys.stderr)
-        return EXIT_ERROR
+            return record_review(str(st.root), a.run, a.verdict, windows=a.window or [],
+                                 recordings=a.recording or [], note=a.note or "", reviewer=a.reviewer)
+
+    rows, code = _guarded(go)
+    if code is not None:
+        return code
     out = {"review_id": rows["review_id"].iloc[0], "verdict": a.verdict, "run_id": a.run,
            "windows": [{"recording_id": r.recording_id, "window_index": int(r.window_index)}
                        for r in rows.itertuples(index=False)]}
@@ -324,44 +362,54 @@ def cmd_review(a) -> int:
 
 
 def cmd_report(a) -> int:
-    env.configure(a.store)
-    from fleetsift.flows.report import write_report
+    def go():
+        _existing_store(a.store)  # before env.configure, which makes folders in the store
+        env.configure(a.store)
+        from fleetsift.flows.report import write_report
 
-    path = write_report(a.store, a.run, a.out, as_of=a.as_of, top_n=a.top, profile=a.profile)
+        return write_report(a.store, a.run, a.out, as_of=a.as_of, top_n=a.top, profile=a.profile)
+
+    path, code = _guarded(go)
+    if code is not None:
+        return code
     print(path)
     return EXIT_OK
 
 
 def cmd_sweep(a) -> int:
-    from fleetsift.errors import InputError, StoreLockedError
+    def go():
+        from fleetsift.flows import night
 
-    env.configure(a.store)
-    from fleetsift.flows.sweep import run_sweep
+        night.fleet_profile(night.discover_inbox(a.inbox), a.profile)  # before any store folder is made
+        env.configure(a.store)
+        from fleetsift.flows.sweep import run_sweep
 
-    try:
-        out = run_sweep(a.inbox, a.store, a.labels, grid_path=a.grid, profile_path=a.profile, out_dir=a.out,
-                        wait_s=a.wait)
-    except (InputError, StoreLockedError) as e:
-        print(f"fleetsift: {e}", file=sys.stderr)
-        return EXIT_ERROR
+        return run_sweep(a.inbox, a.store, a.labels, grid_path=a.grid, profile_path=a.profile, out_dir=a.out,
+                         wait_s=a.wait)
+
+    out, code = _guarded(go)
+    if code is not None:
+        return code
     if a.json:
         print(json.dumps(out))
         return EXIT_OK
-    print(f"{'point':>5} {'varied':<9} {'window_s':>8} {'hop_s':>6} {'k':>3} {'kind':<12} {'metric':<10} "
-          f"{'ridge':>7} {'AUC':>6} {'+-':>6}")
+    print(f"{'point':>5} {'varied':<9} {'window_s':>8} {'hop_s':>6} {'k':>3} {'kind':<10} {'shrinkage':<11} "
+          f"{'metric':<10} {'ridge':>7} {'AUC':>6} {'+-':>6}")
     for r in out["points"]:
         auc = "  -   " if r["auc"] is None else f"{r['auc']:.3f}"
         se = "" if r["auc_se"] is None else f"{r['auc_se']:.3f}"
-        print(f"{r['point']:>5} {r['varied']:<9} {r['window_s']:>8g} {r['hop_s']:>6g} {r['k']:>3} {r['kind']:<12} "
+        print(f"{r['point']:>5} {r['varied']:<9} {r['window_s']:>8g} {r['hop_s']:>6g} {r['k']:>3} {r['kind']:<10} "
+              f"{r['shrinkage']:<11} "
               f"{r['metric']:<10} {r['ridge']:>7g} {auc:>6} {se:>6}" + (f"  {r['error']}" if r["error"] else ""))
     print(f"table {out['csv']}\nplot  {out['plot']}")
     return EXIT_OK
 
 
 def cmd_history(a) -> int:
-    from fleetsift.store import Store
-
-    hist = Store(a.store).runs_history()
+    st, code = _guarded(lambda: _existing_store(a.store, runs=False))
+    if code is not None:
+        return code
+    hist = st.runs_history()
     if a.json:
         print(hist.to_json(orient="records", date_format="iso"))
     else:
@@ -370,127 +418,199 @@ def cmd_history(a) -> int:
 
 
 def cmd_maintain(a) -> int:
-    from fleetsift.store import Store
+    def go():
+        st = _existing_store(a.store, runs=False)
+        with st.lock(wait_s=a.wait):
+            return st.maintain(retention_hours=a.retention_hours)
 
-    st = Store(a.store)
-    with st.lock(wait_s=a.wait):
-        out = st.maintain(retention_hours=a.retention_hours)
+    out, code = _guarded(go)
+    if code is not None:
+        return code
     print(json.dumps(out) if a.json else "\n".join(f"{k}: {v}" for k, v in out.items()))
     return EXIT_OK
 
 
 def cmd_serve(a) -> int:
+    from fleetsift.flows import night
+
+    _, code = _guarded(lambda: night.fleet_profile(night.discover_inbox(a.inbox), a.profile))
+    if code is not None:
+        return code
+    from fleetsift.flows.serve import NO_SERVER, serve
+
+    if not os.environ.get("PREFECT_API_URL"):
+        print(NO_SERVER, file=sys.stderr)
+        return EXIT_NO_SERVER
     env.configure(a.store)
-    from fleetsift.flows.serve import serve
 
     return serve(inbox=a.inbox, store=a.store, cron=a.cron, profile=a.profile, name=a.name)
 
 
-def build_parser() -> argparse.ArgumentParser:
-    p = argparse.ArgumentParser(prog="fleetsift", description="Screen fleet recordings for abnormal windows. "
-                                + SAFETY_NOTE)
-    sub = p.add_subparsers(dest="command", required=True)
+class _HelpFormatter(argparse.HelpFormatter):
+    """Every option's help ends with its default (or says it is required), so no option is left unexplained."""
 
-    r = sub.add_parser("run", help="score every new or changed recording in an inbox into a results store")
-    r.add_argument("--inbox", required=True)
-    r.add_argument("--store", required=True)
-    r.add_argument("--profile")
-    r.add_argument("--runner", choices=("local", "dask"), default="local")
-    r.add_argument("--dask-address")
-    r.add_argument("--wait", type=float, default=0.0, help="seconds to wait for another run's store lock")
+    def _get_help_string(self, action):
+        text = action.help or ""
+        if not action.option_strings or "default" in text or text == argparse.SUPPRESS:
+            return text
+        if action.required:
+            return f"{text} (required)"
+        d = action.default
+        if d is None or d is argparse.SUPPRESS:
+            return text  # tests/test_cli.py requires such help to say its default in words
+        if isinstance(d, bool):
+            d = "on" if d else "off"
+        return f"{text} (default: {d})"
+
+
+def _sub(sub, name: str, **kw) -> argparse.ArgumentParser:
+    return sub.add_parser(name, formatter_class=_HelpFormatter, description=kw.get("help"), **kw)
+
+
+def _common(ps, *, inbox=False, store=None, profile=False, wait=False, json_=False) -> None:
+    """Options that several commands share, with one wording each."""
+    if inbox:
+        ps.add_argument("--inbox", required=True, metavar="DIR", help="inbox folder, one sub-folder per recording")
+    if store == "required":
+        ps.add_argument("--store", required=True, metavar="DIR", help="results store folder (Delta Lake tables)")
+    if profile:
+        ps.add_argument("--profile", metavar="FILE",
+                        help="sensor profile TOML (default: INBOX/profile.toml)")
+    if wait:
+        ps.add_argument("--wait", type=float, default=0.0, metavar="SECONDS",
+                        help="seconds to wait for another run's store lock before exit 4")
+    if json_:
+        ps.add_argument("--json", action="store_true", help="print one JSON object instead of a table")
+
+
+def build_parser() -> argparse.ArgumentParser:
+    p = argparse.ArgumentParser(prog="fleetsift", formatter_class=_HelpFormatter,
+                                description="Screen fleet recordings for abnormal windows. " + SAFETY_NOTE,
+                                epilog=EXIT_EPILOG)
+    sub = p.add_subparsers(dest="command", required=True, metavar="COMMAND")
+
+    r = _sub(sub, "run", help="score every new or changed recording in an inbox into a results store")
+    _common(r, inbox=True, store="required", profile=True)
+    r.add_argument("--runner", choices=("local", "dask"), default="local",
+                   help="local: one process; dask: per-recording stages on a Dask cluster")
+    r.add_argument("--dask-address", metavar="ADDR",
+                   help="scheduler of an existing Dask cluster, tcp://HOST:8786 "
+                        "(default: a temporary 2-worker local cluster)")
+    _common(r, wait=True)
     r.add_argument("--rebuild", action="append", metavar="NAME",
-                   help="recompute a stage (tables, embed, score) or a stream's branch even when cached; repeatable")
+                   help="recompute a stage (tables, embed, score) or a stream's branch even when cached; "
+                        "repeatable (default: none)")
     r.add_argument("--orchestrate", choices=("auto", "always"), default="auto",
                    help="auto: a night with nothing to compute is recorded without starting Prefect; "
                         "always: every night runs as a Prefect flow")
-    r.add_argument("--json", action="store_true")
+    _common(r, json_=True)
     r.set_defaults(fn=cmd_run)
 
-    e = sub.add_parser("evaluate", help="score an inbox and compare with labelled anomalous intervals")
-    e.add_argument("--inbox", required=True)
+    e = _sub(sub, "evaluate", help="score an inbox and compare with labelled anomalous intervals")
+    _common(e, inbox=True)
     lab = e.add_mutually_exclusive_group(required=True)
-    lab.add_argument("--labels", help="CSV recording,start_s,end_s of anomalous intervals")
+    lab.add_argument("--labels", metavar="FILE",
+                     help="CSV recording_id,t_start_s,t_end_s of anomalous intervals; "
+                          "this or --reviews-from is required")
     lab.add_argument("--reviews-from", dest="reviews_from", metavar="STORE",
-                     help="use the engineers' verdicts in this store as the labels (only reviewed windows count)")
-    e.add_argument("--profile")
-    e.add_argument("--store", help="store to use (default: a scratch folder)")
-    e.add_argument("--plot", help="write ROC curves to this PNG (default STORE/reports/RUN-roc.png)")
-    e.add_argument("--no-baselines", action="store_true", dest="no_baselines",
-                   help="skip the IsolationForest / LocalOutlierFactor comparison")
-    e.add_argument("--wait", type=float, default=0.0)
-    e.add_argument("--json", action="store_true")
+                     help="use the engineers' verdicts in this store as the labels (only reviewed windows count); "
+                          "this or --labels is required")
+    _common(e, profile=True)
+    e.add_argument("--store", metavar="DIR", help="store to use (default: a scratch folder)")
+    e.add_argument("--plot", metavar="FILE", help="write ROC curves to this PNG (default: STORE/reports/RUN-roc.png)")
+    e.add_argument("--no-comparison-detectors", action="store_true", dest="no_comparison",
+                   help="skip the comparison detectors (IsolationForest, LocalOutlierFactor)")
+    e.add_argument("--no-baselines", action="store_true", dest="no_baselines_deprecated",
+                   help="deprecated name of --no-comparison-detectors, removed in the next release")
+    _common(e, wait=True, json_=True)
     e.set_defaults(fn=cmd_evaluate)
 
-    rv = sub.add_parser("review", help="record an engineer's verdict on scored windows or recordings")
-    rv.add_argument("--store", required=True, help="the results store holding the run")
-    rv.add_argument("--run", required=True, help="the run whose windows were reviewed")
+    rv = _sub(sub, "review", help="record an engineer's verdict on scored windows or recordings")
+    _common(rv, store="required")
+    rv.add_argument("--run", required=True, metavar="RUN_ID", help="the run whose windows were reviewed")
     rv.add_argument("--window", action="append", metavar="RECORDING:INDEX",
-                    help="a reviewed window, e.g. rover-01-zone-s:12 (repeatable)")
+                    help="a reviewed window, e.g. rover-01-zone-s:12; repeatable (default: none)")
     rv.add_argument("--recording", action="append", metavar="RECORDING",
-                    help="a whole reviewed recording (repeatable)")
+                    help="a whole reviewed recording; repeatable (default: none)")
     rv.add_argument("--verdict", required=True, choices=VERDICTS,
                     help="normal: the window joins the baseline and is not flagged again; fault: it never joins")
-    rv.add_argument("--note", help="free text kept with the verdict")
-    rv.add_argument("--reviewer", help="who reviewed (default: the login name)")
-    rv.add_argument("--wait", type=float, default=0.0, help="seconds to wait for another run's store lock")
-    rv.add_argument("--json", action="store_true")
+    rv.add_argument("--note", metavar="TEXT", help="free text kept with the verdict (default: empty)")
+    rv.add_argument("--reviewer", metavar="NAME", help="who reviewed (default: the login name)")
+    _common(rv, wait=True, json_=True)
     rv.set_defaults(fn=cmd_review)
 
-    rp = sub.add_parser("report", help="write a self-contained HTML report of a run")
-    rp.add_argument("--store", required=True)
-    rp.add_argument("--run")
-    rp.add_argument("--as-of", type=int, dest="as_of", help="store version to read (time travel)")
-    rp.add_argument("--out", required=True)
-    rp.add_argument("--top", type=int, default=10, help="flagged windows shown with thumbnails and traces")
-    rp.add_argument("--profile", help="profile to read the recordings with (default: the inbox's profile.toml)")
+    rp = _sub(sub, "report", help="write a self-contained HTML report of a run")
+    _common(rp, store="required")
+    rp.add_argument("--run", metavar="RUN_ID", help="the run to report (default: the latest run)")
+    rp.add_argument("--as-of", type=int, dest="as_of", metavar="VERSION",
+                    help="runs-table version to read, as `fleetsift history` lists it (default: the newest)")
+    rp.add_argument("--out", required=True, metavar="FILE", help="HTML file to write")
+    rp.add_argument("--top", type=int, default=10, metavar="N",
+                    help="flagged windows shown with thumbnails and traces")
+    rp.add_argument("--profile", metavar="FILE",
+                    help="profile to read the recordings with (default: the inbox's profile.toml)")
     rp.set_defaults(fn=cmd_report)
 
-    sw = sub.add_parser("sweep", help="ROC AUC against labels over a grid of window, hop, k, descriptor, metric")
-    sw.add_argument("--inbox", required=True)
-    sw.add_argument("--labels", required=True)
-    sw.add_argument("--store", required=True, help="store whose stage cache the sweep reuses (and fills)")
-    sw.add_argument("--grid", help="grid TOML (default: one parameter at a time around the profile, 12 points)")
-    sw.add_argument("--profile")
-    sw.add_argument("--out", help="folder for sweep.csv and sweep.png (default STORE/sweeps/<time>)")
-    sw.add_argument("--wait", type=float, default=0.0)
-    sw.add_argument("--json", action="store_true")
+    sw = _sub(sub, "sweep", help="ROC AUC against labels over a grid of window, hop, k, descriptor, metric")
+    _common(sw, inbox=True)
+    sw.add_argument("--labels", required=True, metavar="FILE",
+                    help="CSV recording_id,t_start_s,t_end_s of anomalous intervals")
+    sw.add_argument("--store", required=True, metavar="DIR", help="store whose stage cache the sweep reuses (and fills)")
+    sw.add_argument("--grid", metavar="FILE",
+                    help="grid TOML (default: one parameter at a time around the profile, 12 points)")
+    _common(sw, profile=True)
+    sw.add_argument("--out", metavar="DIR", help="folder for sweep.csv and sweep.png (default: STORE/sweeps/<time>)")
+    _common(sw, wait=True, json_=True)
     sw.set_defaults(fn=cmd_sweep)
 
-    h = sub.add_parser("history", help="list the store's runs and versions")
-    h.add_argument("--store", required=True)
-    h.add_argument("--json", action="store_true")
+    h = _sub(sub, "history", help="list the store's runs with the runs-table version that committed each")
+    _common(h, store="required", json_=True)
     h.set_defaults(fn=cmd_history)
 
-    mt = sub.add_parser("maintain", help="compact the store's tables and vacuum files outside the retention")
-    mt.add_argument("--store", required=True)
-    mt.add_argument("--retention-hours", type=float, default=168.0, dest="retention_hours")
-    mt.add_argument("--wait", type=float, default=0.0)
-    mt.add_argument("--json", action="store_true")
+    mt = _sub(sub, "maintain", help="compact the store's tables and vacuum files outside the retention")
+    _common(mt, store="required")
+    mt.add_argument("--retention-hours", type=float, default=168.0, dest="retention_hours", metavar="HOURS",
+                    help="keep files (and time travel) this many hours back")
+    _common(mt, wait=True, json_=True)
     mt.set_defaults(fn=cmd_maintain)
 
-    s = sub.add_parser("serve", help="serve the nightly run on a cron schedule against a Prefect server")
-    s.add_argument("--inbox", required=True)
-    s.add_argument("--store", required=True)
-    s.add_argument("--cron", default="0 2 * * *")
-    s.add_argument("--profile")
-    s.add_argument("--name", default="nightly")
+    s = _sub(sub, "serve", help="serve the nightly run on a cron schedule against a Prefect server")
+    _common(s, inbox=True, store="required")
+    s.add_argument("--cron", default="0 2 * * *", metavar="SCHEDULE", help="cron schedule of the nightly run")
+    _common(s, profile=True)
+    s.add_argument("--name", default="nightly", help="deployment name, fleetsift-scheduled/NAME")
     s.set_defaults(fn=cmd_serve)
 
-    d = sub.add_parser("demo", help="run the whole job on the bundled demo fleet and write the report")
-    d.add_argument("--inbox", help=argparse.SUPPRESS)
-    d.add_argument("--store", help="store folder (default demo_out/store)")
+    d = _sub(sub, "demo", help="run the whole job on the bundled demo fleet and write the report")
+    d.add_argument("--inbox", metavar="DIR",
+                   help="inbox to score (default: sample_raw/ with one recording written as a ROS 2 bag)")
+    d.add_argument("--store", metavar="DIR", help="store folder (default: demo_out/store)")
     d.set_defaults(fn=cmd_demo)
 
-    m = sub.add_parser("make-sample", help="generate a demo fleet of warehouse rover recordings")
-    m.add_argument("--out", required=True)
-    m.add_argument("--recordings", type=int, default=8)
-    m.add_argument("--seconds", type=float, default=60.0)
-    m.add_argument("--seed", type=int, default=7)
+    m = _sub(sub, "make-sample", help="generate a demo fleet of warehouse rover recordings")
+    m.add_argument("--out", required=True, metavar="DIR", help="folder to write the recordings into")
+    m.add_argument("--recordings", type=int, default=8, metavar="N", help="number of recordings")
+    m.add_argument("--seconds", type=float, default=60.0, help="length of each recording in seconds")
+    m.add_argument("--seed", type=int, default=7, help="random seed")
     m.set_defaults(fn=cmd_make_sample)
     return p
 
 
+def _show_deprecation(message, category, filename, lineno, file=None, line=None, _default=None):
+    """Deprecation messages (renamed profile keys, label columns) as one plain line, not a source excerpt."""
+    if issubclass(category, FutureWarning):
+        print(f"fleetsift: deprecated: {message}", file=sys.stderr)
+    else:
+        _default(message, category, filename, lineno, file, line)
+
+
 def main(argv: list[str] | None = None) -> int:
+    import functools
+    import warnings
+
+    if not getattr(warnings.showwarning, "fleetsift", False):  # once per process
+        warnings.showwarning = functools.partial(_show_deprecation, _default=warnings.showwarning)
+        warnings.showwarning.fleetsift = True
     args = build_parser().parse_args(argv)
     return int(args.fn(args) or 0)
 

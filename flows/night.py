@@ -21,6 +21,7 @@ from fleetsift.errors import InputError
 from fleetsift.location import ObjectPath, resolved
 from fleetsift.profile import PROFILE_NAME, Profile, load_profile, profile_for
 from fleetsift.store import Store
+from fleetsift.vocabulary import OK, SCORED, UNSCORED
 from fleetsift.tasks import stages
 from fleetsift.tasks.stages import NotCached  # noqa: F401 -- raised through run_night by CACHED_ONLY
 
@@ -46,10 +47,17 @@ def _is_store(p: "Path | ObjectPath") -> bool:
             or ((p / "cache" / "tables").is_dir() and (p / "baselines").is_dir()))
 
 
+def discover_inbox(inbox: "str | Path | ObjectPath", storage=None) -> "Path | ObjectPath":
+    """The inbox folder (or bucket prefix), resolved; InputError naming it when it is not a folder."""
+    p = resolved(inbox, storage)
+    if not p.is_dir():
+        raise InputError(p, "inbox", "a folder of recording folders", "no such folder")
+    return p
+
+
 def discover(inbox: "Path | ObjectPath") -> list["Path | ObjectPath"]:
     """Every sub-folder of the inbox is a recording (hidden ones and the store, if inside, are skipped)."""
-    if not inbox.is_dir():
-        raise InputError(inbox, "inbox", "a folder of recording folders", "no such folder")
+    inbox = discover_inbox(inbox)
     return sorted(p for p in inbox.iterdir() if p.is_dir() and not p.name.startswith((".", "_"))
                   and not _is_store(p))
 
@@ -87,7 +95,7 @@ def prepare_recordings(tables: Callable[..., dict], embed: Callable[..., dict], 
 
     ``tables``/``embed`` are the stage callables (Prefect tasks with ``.submit`` when ``parallel``). A recording
     is read with its own profile laid over the fleet's (windowing, descriptor and scoring stay the fleet's), and
-    quarantined with the reason when that profile does not parse, a stage fails on it or it is shorter than one
+    left unscored with the reason when that profile does not parse, a stage fails on it or it is shorter than one
     window. Returns (prepared ``[{"tables", "embed"}]`` of the recordings to score, rows ``{recording id: its
     recordings-table row}`` for every recording, stats ``{"tables"|"embed": {"computed", "reused"}}``).
     """
@@ -98,7 +106,7 @@ def prepare_recordings(tables: Callable[..., dict], embed: Callable[..., dict], 
             prof = profile_for(rec, fleet)
         except InputError as e:
             rows[rec.name] = {"recording_id": rec.name, "content_hash": "", "duration_s": None,
-                              "status": "quarantined", "reason": str(e)}
+                              "status": UNSCORED, "reason": str(e)}
             continue
         # Windowing, descriptor and scoring are the fleet's; a recording's own profile may only re-describe streams.
         jobs.append((str(rec), Profile(path=prof.path, streams=prof.streams, windowing=fleet.windowing,
@@ -121,25 +129,25 @@ def prepare_recordings(tables: Callable[..., dict], embed: Callable[..., dict], 
     frames = {"frames": 0, "frames_skipped": 0, "damaged_spans": 0}
     for (rec, prof), tab, emb in zip(jobs, tabs, embs):
         name = Path(rec).name
-        if tab["status"] == "ok":
+        if tab["status"] == OK:
             stats["tables"]["reused" if tab["reused"] else "computed"] += 1
-        if emb["status"] == "ok":
+        if emb["status"] == OK:
             stats["embed"]["reused"] += emb["reused"]
             stats["embed"]["computed"] += emb["computed"]
             for k in frames:
                 frames[k] += emb.get(k, 0)
-        if tab["status"] == "ok" and tab["duration_s"] < fleet.windowing.window_s:
-            tab = {"status": "quarantined", "content": tab["content"], "duration_s": tab["duration_s"],
+        if tab["status"] == OK and tab["duration_s"] < fleet.windowing.window_s:
+            tab = {"status": UNSCORED, "content": tab["content"], "duration_s": tab["duration_s"],
                    "reason": f"{rec}: windowing.window_s: expected a recording at least one window "
                              f"({fleet.windowing.window_s:g} s) long, got {tab['duration_s']:.3g} s"}
-        bad = next((x for x in (tab, emb) if x["status"] != "ok"), None)
+        bad = next((x for x in (tab, emb) if x["status"] != OK), None)
         if bad is not None:
             rows[name] = {"recording_id": name, "content_hash": tab.get("content", ""),
-                          "duration_s": tab.get("duration_s"), "status": "quarantined", "reason": bad["reason"]}
+                          "duration_s": tab.get("duration_s"), "status": UNSCORED, "reason": bad["reason"]}
             continue
         prepared.append({"tables": tab, "embed": emb})
         rows[name] = {"recording_id": name, "content_hash": tab["content"], "duration_s": tab["duration_s"],
-                      "status": "scored", "reason": ""}
+                      "status": SCORED, "reason": ""}
     stats["embed_frames"] = frames  # run_night moves it beside "stages" (whose entries count items)
     return prepared, rows, stats
 
@@ -173,10 +181,10 @@ def run_night(steps: Steps, inbox: str, store: str, profile_path: str | None = N
             # A fleet-level failure (e.g. channels differing between recordings): nothing scored, reason kept.
             for p in prepared:
                 rid = p["tables"]["recording_id"]
-                rec_rows[rid].update(status="quarantined", reason=f"fleet scoring: {e}")
+                rec_rows[rid].update(status=UNSCORED, reason=f"fleet scoring: {e}")
     rows = [rec_rows[k] for k in sorted(rec_rows)]
     written = steps.write(str(st.root), run_id, started, fleet, __version__, rows, score, str(inbox_p))
     return {"run_id": run_id, "store": str(st.root), "store_version": written["version"],
-            "windows_version": written["windows_version"], "score": score, "recordings": rows, "stages": stats,
-            "embed_frames": embed_frames,
+            "windows_version": written["windows_version"], "table_versions": written["table_versions"],
+            "score": score, "recordings": rows, "stages": stats, "embed_frames": embed_frames,
             "profile": fleet.path, "elapsed_s": round(time.time() - started, 2)}

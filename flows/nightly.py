@@ -30,5 +30,5 @@ def scheduled_run(inbox: str, store: str, profile_path: str | None = None) -> di
         result = nightly_flow(inbox=inbox, store=store, profile_path=profile_path, progress=False)
     out = st.root / "reports" / f"{result['run_id']}.html"
     write_report(str(st.root), result["run_id"], str(out))
-    print(f"fleetsift run {result['run_id']}: store version {result['store_version']}, report {out}")
+    print(f"fleetsift run {result['run_id']}: runs-table version {result['store_version']}, report {out}")
     return {"run_id": result["run_id"], "store_version": result["store_version"], "report": str(out)}

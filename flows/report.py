@@ -1,7 +1,7 @@
 """A self-contained HTML report of one run: one file, every image embedded as a data URI, no script, no link out.
 
 Contents: the run and the safety note; the fleet at a glance (recordings, status, flagged windows and spans,
-highest scores, quarantine reasons); the top-N flagged windows, each with video thumbnails from the window, the
+highest scores, why a recording was left unscored); the top-N flagged windows, each with video thumbnails from the window, the
 table-stream traces around it and the channels that drive its deviation; and a score timeline per recording with
 the threshold and the flagged spans. Thumbnails and traces are read from the recording folders named in the store
 (`recordings.path`, else `runs.inbox`); a folder that is gone is noted, not an error.
@@ -22,11 +22,41 @@ from fleetsift import __version__
 from fleetsift.location import ObjectPath, location, write_atomic
 from fleetsift.store import Store
 from fleetsift.safety import SAFETY_NOTE
+from fleetsift.vocabulary import KNN_STATS, SCORED, SCORING_METHODS, UNSCORED
 
 TOP_N = 10
 THUMB_W = 176  # px; three JPEG thumbnails per window stay ~15 KB
 PLOT_DPI = 90
 ACCENT, INK, MUTED = "#b7472a", "#24425f", "#8aa1b4"
+# Line colours of every plot fleetsift draws (report, ROC curves, sweep), in order: the report's palette, not
+# Matplotlib's defaults.
+PALETTE = (INK, ACCENT, "#3f8f6b", "#d08c2c", "#6b4f9e", MUTED, "#526170")
+
+
+def iso_time(t) -> str:
+    """A timestamp as ISO 8601 to the second, in UTC (``2026-12-03T02:00:07Z``); '-' when missing."""
+    if t is None or (not isinstance(t, str) and pd.isna(t)):
+        return "-"
+    ts = pd.Timestamp(t)
+    ts = ts.tz_localize("UTC") if ts.tzinfo is None else ts.tz_convert("UTC")
+    return ts.strftime("%Y-%m-%dT%H:%M:%SZ")
+
+
+def score_axis_label(metric: str, scoring=None) -> str:
+    """What a score axis shows: the robust z of which distance, by which statistic."""
+    if scoring is None:
+        return f"robust z of the {metric} distance"
+    stat = dict(zip(SCORING_METHODS, (f"{'k-th' if scoring.knn_stat == KNN_STATS[0] else 'mean of k'} nearest "
+                                      f"(k = {scoring.k})", f"local outlier factor (k = {scoring.k})",
+                                      "to the Fréchet mean"))).get(scoring.method, scoring.method)
+    return f"robust z of the {metric} distance, {stat}"
+
+
+THRESHOLD_TEXT = ("A window's score is a robust z: (distance - median) / robust sigma of the references' own "
+                  "leave-one-out distances, robust sigma = 1.4826 x MAD (the median absolute deviation, scaled "
+                  "to the standard deviation of normal data). A window is flagged when its score exceeds c, "
+                  "i.e. its distance exceeds median + c x robust sigma; c = 3 is about three standard deviations "
+                  "beyond typical normal operation.")
 
 
 # ------------------------------------------------------------------------------------------------ encoding
@@ -87,7 +117,7 @@ def flagged_spans(g: pd.DataFrame) -> list[tuple[float, float]]:
 
 def pick_top(prim: pd.DataFrame, n: int) -> pd.DataFrame:
     """The n highest-scoring flagged windows, skipping any that overlaps a window already picked in the same
-    recording, so overlapping windows of one event do not fill the list (non-maximum suppression, common
+    recording, so overlapping windows of one flagged span do not fill the list (non-maximum suppression, common
     practice in detection)."""
     cand = prim[prim["flagged"]].sort_values(["score", "recording_id", "window_index"],
                                             ascending=[False, True, True])
@@ -128,6 +158,7 @@ class RecordingSource:
         self.dir = rec_dir
         self.profile = profile
         self.tables = [recording.read_table_stream(rec_dir, s) for s in profile.table_streams()]
+        self.units = {ch: u for s in profile.table_streams() for ch, u in s.units.items()}
         # Times in the store are seconds from the earliest sample of any table stream (fleetsift.featurizers.recording).
         self.t0 = min(float(tb.t[0]) for tb in self.tables)
 
@@ -202,8 +233,8 @@ def _source(rec_path: str, fleet_profile):
 
 # ---------------------------------------------------------------------------------------------- figures
 
-def timeline_png(g: pd.DataFrame, threshold: float, marks: dict[int, int]) -> str:
-    """Score against time with the threshold, flagged spans shaded, invalid windows ticked, top windows numbered."""
+def timeline_png(g: pd.DataFrame, threshold: float, marks: dict[int, int], ylabel: str = "score") -> str:
+    """Score against time with the threshold, flagged spans shaded, unscored windows ticked, top windows numbered."""
     plt = _mpl()
     fig, ax = plt.subplots(figsize=(9.0, 2.1))
     ok = g[g["score"].notna()]
@@ -211,12 +242,12 @@ def timeline_png(g: pd.DataFrame, threshold: float, marks: dict[int, int]) -> st
     for s, e in flagged_spans(ok):
         ax.axvspan(s, e, color=ACCENT, alpha=0.16, lw=0)
     ax.plot(c, ok["score"], color=INK, lw=1.1, marker=".", ms=3, label="window score")
-    ax.axhline(threshold, color=ACCENT, ls="--", lw=1, label=f"threshold {threshold:.3g}")
+    ax.axhline(threshold, color=ACCENT, ls="--", lw=1, label=f"threshold c = {threshold:.3g}")
     bad = g[g["score"].isna()]
     if len(bad):
         y0 = float(ok["score"].min()) if len(ok) else 0.0
         ax.plot((bad["t_start_s"] + bad["t_end_s"]) / 2, np.full(len(bad), y0), "|", color=MUTED, ms=8,
-                label="invalid (gap)")
+                label="unscored (gap)")
     by_idx = ok.set_index("window_index")
     for widx, rank in marks.items():
         if widx in by_idx.index:
@@ -224,7 +255,7 @@ def timeline_png(g: pd.DataFrame, threshold: float, marks: dict[int, int]) -> st
             ax.annotate(str(rank), ((r["t_start_s"] + r["t_end_s"]) / 2, r["score"]), xytext=(0, 5),
                         textcoords="offset points", ha="center", fontsize=7, color=ACCENT, weight="bold")
     ax.set_xlabel("seconds from the recording's first sample", fontsize=8)
-    ax.set_ylabel("score", fontsize=8)
+    ax.set_ylabel(ylabel, fontsize=7)
     ax.tick_params(labelsize=7)
     ax.margins(x=0.01, y=0.18)
     ax.legend(loc="lower right", bbox_to_anchor=(1.0, 1.0), fontsize=7, ncol=3, frameon=False, borderaxespad=0.1)
@@ -233,7 +264,7 @@ def timeline_png(g: pd.DataFrame, threshold: float, marks: dict[int, int]) -> st
 
 
 def traces_png(series: list[tuple[str, np.ndarray, np.ndarray]], t_start: float, t_end: float,
-               shares: dict[str, float], max_rows: int = 8) -> str:
+               shares: dict[str, float], max_rows: int = 8, units: dict[str, str] | None = None) -> str:
     """The table channels around the window as stacked strips of one plot (each scaled to its own range, which is
     printed at the right); channels named among the drivers in the accent. One Axes instead of a panel per channel
     draws several times faster."""
@@ -255,7 +286,8 @@ def traces_png(series: list[tuple[str, np.ndarray, np.ndarray]], t_start: float,
         lo, hi = (float(np.nanmin(v)), float(np.nanmax(v))) if np.isfinite(v).any() else (0.0, 0.0)
         span = hi - lo if hi > lo else 1.0
         ax.plot(t, y0 - 0.4 + 0.8 * (v - lo) / span, lw=0.7, color=ACCENT if hot else INK)
-        ax.text(1.005, y0, f"{lo:.3g} .. {hi:.3g}", transform=right, fontsize=6, va="center", color="#526170")
+        unit = f" {(units or {}).get(name, '')}".rstrip()
+        ax.text(1.005, y0, f"{lo:.3g} .. {hi:.3g}{unit}", transform=right, fontsize=6, va="center", color="#526170")
         labels.append(f"{name} {shares[name]:.0%}" if hot else name)
         colours.append(ACCENT if hot else "#333")
     ax.set_yticks(np.arange(n)[::-1], labels, fontsize=7)
@@ -287,7 +319,7 @@ h3{font-size:1em;margin:.2em 0 .4em}
 .tile b{display:block;font-size:1.35em}
 table{border-collapse:collapse;width:100%;font-size:.9em}th,td{border-bottom:1px solid #dfe5eb;padding:3px 6px;
 text-align:left;vertical-align:top}th{background:#f2f5f8}td.n{text-align:right;font-variant-numeric:tabular-nums}
-tr.quarantined td{background:#fdf0ee}
+tr.unscored td{background:#fdf0ee}
 .card{border:1px solid #d8e0e8;border-radius:8px;padding:.6em .8em;margin:.8em 0;break-inside:avoid}
 .rank{display:inline-block;background:#b7472a;color:#fff;border-radius:4px;padding:0 .45em;margin-right:.4em}
 .row{display:flex;gap:1em;flex-wrap:wrap;align-items:flex-start}
@@ -349,7 +381,7 @@ def window_verdicts(st: Store, prim: pd.DataFrame, recs: pd.DataFrame) -> dict[t
         for r in prim[hit].itertuples():
             out[(r.recording_id, int(r.window_index))] = {"verdict": row["verdict"], "note": row["note"] or "",
                                                           "reviewer": row["reviewer"] or "",
-                                                          "reviewed_at": str(row["reviewed_at"])[:19]}
+                                                          "reviewed_at": iso_time(row["reviewed_at"])}
     return out
 
 
@@ -420,27 +452,43 @@ def _body_key(w: pd.DataFrame, recs: pd.DataFrame, fleet_prof, prof_note: str, t
             own.append(f.signature() if f.is_file() else "")
         else:
             own.append(f"{f.stat().st_mtime_ns}:{f.stat().st_size}" if f is not None and f.is_file() else "")
-    h.update(repr((fleet_prof.digest() if fleet_prof is not None else None, prof_note, int(top_n), own,
+    units = sorted((s.name, sorted(s.units.items())) for s in fleet_prof.table_streams()) if fleet_prof else []
+    h.update(repr((fleet_prof.digest() if fleet_prof is not None else None, units, prof_note, int(top_n), own,
                    sorted((verdicts or {}).items()))).encode())
     return h.hexdigest()[:24]
+
+
+def _settings_html(prof, metric: str, thresholds: dict) -> str:
+    """The values the scores depend on, printed (not only the profile's hash)."""
+    c = f"{thresholds[metric]:g}" if metric in thresholds else "-"  # the c that flagged the primary metric
+    if prof is None:
+        return f"<p class='meta' id='settings'>Settings: metric {_e(metric)}, c = {c} (profile not found).</p>"
+    w, sc, d = prof.windowing, prof.scoring, prof.descriptor
+    items = [("window", f"{w.window_s:g} s"), ("hop", f"{w.hop_s:g} s"), ("clock", f"{w.rate_hz:g} Hz"),
+             ("metric", metric), ("method", sc.method), ("k", sc.k), ("knn_stat", sc.knn_stat),
+             ("c", c), ("descriptor", d.kind)]
+    return ("<p class='meta' id='settings'>Settings: "
+            + ", ".join(f"{_e(k)} <b data-setting='{_e(k)}'>{_e(v)}</b>" for k, v in items) + ".</p>")
 
 
 def write_report(store: str, run_id: str | None, out: str, as_of: int | None = None, top_n: int = TOP_N,
                  profile: str | None = None) -> str:
     """Write the HTML report of ``run_id`` (default: the latest run at ``as_of``) to ``out``; returns the path.
 
-    ``as_of`` is a `runs` table version (time travel); ``profile`` overrides the inbox's profile.toml for reading
+    ``as_of`` is a `runs` table version (time travel, as `fleetsift history` lists it); ``profile`` overrides the inbox's profile.toml for reading
     thumbnails and traces.
     """
+    from fleetsift.errors import InputError
+
     st = Store(store)
     runs = st.read("runs", version=as_of)
     if runs.empty:
-        raise ValueError(f"{store}: no runs in the store")
+        raise InputError(store, "runs", "a store with committed runs", "none")
     if run_id is None:
         run_id = runs.sort_values("finished_at")["run_id"].iloc[-1]
     sel = runs[runs["run_id"] == run_id]
     if sel.empty:
-        raise ValueError(f"{store}: no run {run_id!r}")
+        raise InputError(store, "--run", "a run id of the store (see `fleetsift history`)", run_id)
     run = sel.iloc[0]
     recs = st.read("recordings", run_id=run_id).sort_values("recording_id")
     w = st.read("windows", run_id=run_id)
@@ -466,23 +514,23 @@ def write_report(store: str, run_id: str | None, out: str, as_of: int | None = N
 
     # --- header and fleet summary
     n_flag = int(valid["flagged"].sum())
-    n_q = int((recs["status"] == "quarantined").sum())
+    n_q = int((recs["status"] == UNSCORED).sum())
     parts = [
         "<h1>fleetsift screening report</h1>",
-        f"<p class='meta'>Run <code>{_e(run_id)}</code> &middot; finished {_e(run['finished_at'])} &middot; "
+        f"<p class='meta'>Run <code>{_e(run_id)}</code> &middot; finished {_e(iso_time(run['finished_at']))} &middot; "
         f"baseline <code>{_e(run['baseline_id'])}</code> &middot; primary metric <b>{_e(metric)}</b> &middot; "
-        f"profile <code>{_e(run['profile_hash'])}</code> &middot; fleetsift {_e(run['code_version'])}"
-        + (f" &middot; store version {as_of}" if as_of is not None else "") + "</p>",
+        f"profile <code>{_e(run['profile_hash'])}</code> &middot; fleetsift {_e(run['fleetsift_version'])}"
+        + (f" &middot; runs-table version {as_of}" if as_of is not None else "") + "</p>",
+        _settings_html(fleet_prof, metric, thresholds),
         f"<p class='safety'><b>Safety note.</b> {_e(SAFETY_NOTE)}</p>",
         "<div class='tiles'>"
         + "".join(f"<div class='tile'><b>{v}</b>{_e(k)}</div>" for k, v in (
-            ("recordings", len(recs)), ("scored", int((recs["status"] == "scored").sum())), ("quarantined", n_q),
+            ("recordings", len(recs)), ("scored", int((recs["status"] == SCORED).sum())), ("unscored", n_q),
             ("windows scored", len(valid)), ("windows flagged", n_flag),
             ("flagged spans", sum(len(flagged_spans(g)) for _, g in valid.groupby("recording_id")))))
         + "</div>",
-        "<p class='meta'>Scores are robust z-scores: (distance - median) / (1.4826 &times; MAD) of the "
-        "references' own leave-one-out distances, so 3 is about three standard deviations beyond typical normal "
-        "operation. Flagged above c = " + ", ".join(sorted({f"{v:g}" for v in thresholds.values()})) + ".</p>",
+        f"<p class='meta' id='threshold'>{_e(THRESHOLD_TEXT)} This run: c = "
+        + (f"{thresholds[metric]:g}" if metric in thresholds else "-") + ".</p>",
         _references_html(st, run),
     ]
     if prof_note:
@@ -504,11 +552,12 @@ def write_report(store: str, run_id: str | None, out: str, as_of: int | None = N
             f"<td class='n'>{len(gall) - len(g)}</td><td class='n flagged'>{int(g['flagged'].sum())}</td>"
             f"<td class='n'>{len(flagged_spans(g))}</td><td>{top_s}</td><td>{_e(r.reason or '')}</td></tr>")
     parts.append("<h2>Recordings</h2><table id='fleet'><tr><th>recording</th><th>status</th><th>seconds</th>"
-                 "<th>windows</th><th>invalid</th><th>flagged</th><th>spans</th><th>highest score</th>"
+                 "<th>windows</th><th>unscored windows</th><th>flagged</th><th>spans</th><th>highest score</th>"
                  "<th>reason</th></tr>" + "".join(rows) + "</table>")
-    quar = recs[recs["status"] == "quarantined"]
+    quar = recs[recs["status"] == UNSCORED]
     if len(quar):
-        parts.append("<h2>Quarantined recordings</h2><p>Not scored; fix the input and the next run picks them up."
+        parts.append("<h2>Unscored recordings</h2><p>These could not be read or scored (nothing is said about the "
+                     "vehicle); fix the input and the next run picks them up."
                      "</p><ul>" + "".join(f"<li><b>{_e(r.recording_id)}</b>: {_e(r.reason)}</li>"
                                           for r in quar.itertuples()) + "</ul>")
 
@@ -520,7 +569,7 @@ def write_report(store: str, run_id: str | None, out: str, as_of: int | None = N
         start = len(parts)
         # --- windows worth a look
         parts.append(f"<h2>Windows worth a look</h2><p>The {len(top)} highest-scoring flagged windows of the primary "
-                     "metric, one per event (a window overlapping a higher-ranked one of the same recording is left "
+                     "metric, one per flagged span (a window overlapping a higher-ranked one of the same recording is left "
                      "out; all flagged windows are shaded in the timelines below).</p>")
         if not len(top):
             parts.append("<p>No window crossed the threshold in this run.</p>")
@@ -563,8 +612,10 @@ def write_report(store: str, run_id: str | None, out: str, as_of: int | None = N
             if src is not None:
                 span = r.t_end_s - r.t_start_s
                 series = src.traces(r.t_start_s - 0.5 * span, r.t_end_s + 0.5 * span)
-                media.append(f"<img alt='table traces of window {rank}' "
-                             f"src='{traces_png(series, r.t_start_s, r.t_end_s, shares)}'>")
+                unit_txt = ", ".join(f"{ch} in {u}" for ch, u in src.units.items())
+                media.append(f"<img alt='table traces of window {rank}" + (f" ({_e(unit_txt)})" if unit_txt else "")
+                             + "' "
+                             f"src='{traces_png(series, r.t_start_s, r.t_end_s, shares, units=src.units)}'>")
             else:
                 media.append(f"<p class='note'>{_e(note)}</p>")
             vd = verdicts.get((r.recording_id, int(r.window_index)))
@@ -573,13 +624,14 @@ def write_report(store: str, run_id: str | None, out: str, as_of: int | None = N
                 f"<h3><span class='rank'>{rank}</span><a href='#{_anchor(r.recording_id)}'>{_e(r.recording_id)}</a>, "
                 f"{r.t_start_s:.1f}&ndash;{r.t_end_s:.1f} s &middot; window {int(r.window_index)} &middot; score "
                 f"{r.score:.2f} (threshold {_fmt(r.threshold, 'g')}) {_verdict_html(vd)}</h3><div class='row'>"
-                f"<div class='drivers'><b>Driving channels</b> (share of the deviation){drivers}</div>"
+                f"<div class='drivers'><b>Top channels</b> (share of the deviation){drivers}</div>"
                 f"<div>{''.join(media)}</div></div></div>")
 
         # --- timelines
         parts.append("<h2>Score timelines</h2><p>One point per window at its centre; shaded: flagged spans; dashed: "
                      "threshold; numbers: the windows above; ticks at the bottom: windows left unscored because they "
                      "straddle a gap.</p>")
+        ylabel = score_axis_label(metric, fleet_prof.scoring if fleet_prof is not None else None)
         for rid, g in prim.groupby("recording_id"):
             g = g.sort_values("window_index")
             if not g["score"].notna().any():
@@ -587,7 +639,7 @@ def write_report(store: str, run_id: str | None, out: str, as_of: int | None = N
             marks = {int(widx): rk for (rr, widx), rk in rank_of.items() if rr == rid}
             thr = float(g["threshold"].iloc[0])
             parts.append(f"<h3 id='{_anchor(rid)}'>{_e(rid)}</h3><img alt='score timeline {_e(rid)}' "
-                         f"src='{timeline_png(g, thr, marks)}'>")
+                         f"src='{timeline_png(g, thr, marks, ylabel)}'>")
 
         write_atomic(body_path, "".join(parts[start:]).encode("utf-8"))
 
@@ -598,9 +650,14 @@ def write_report(store: str, run_id: str | None, out: str, as_of: int | None = N
         "a behaviour counts as normal only where k recordings show it, and never a neighbour from the window's "
         "own recording within the exclusion zone. From the second night on the references are earlier nights' "
         "windows that were clearly normal, so a fault that recurs tonight is measured against last week's "
-        "operation. The score is the largest robust z over the streams; a window is flagged above c. The driving "
+        "operation. The score is the largest robust z over the streams; a window is flagged when it exceeds c (its "
+        "distance exceeds median + c &times; robust sigma, robust sigma = 1.4826 &times; MAD). The driving "
         "channels split the window's deviation by channel (the energy of each channel's rows of the whitened log "
-        "map). A high score says <i>unlike the baseline</i>, not <i>faulty</i>. Record a verdict with "
+        "map). A video stream's channels are named after it: <code>camera.pc1</code> .. <code>camera.pcN</code> are "
+        "the principal components of the frame embeddings (the PCA basis fitted on the baseline), and "
+        "<code>camera.residual</code> is the PCA residual, the part of the embedding the N components leave "
+        "unexplained (the log of its squared norm, the Q statistic of Jackson &amp; Mudholkar 1979), so a view unlike any "
+        "in the baseline still counts. A high score says <i>unlike the baseline</i>, not <i>faulty</i>. Record a verdict with "
         "<code>fleetsift review --store STORE --run RUN --window RECORDING:INDEX --verdict normal|fault</code>: "
         "a window reviewed normal joins the references and is not flagged again; one reviewed as a fault never "
         "joins them.</p>"

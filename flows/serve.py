@@ -6,21 +6,20 @@ Prefect cannot schedule against its embedded temporary server: point PREFECT_API
 
 from __future__ import annotations
 
-import os
 import sys
 from pathlib import Path
+
+
+NO_SERVER = ("fleetsift serve: PREFECT_API_URL is not set. Scheduling needs a Prefect server: start one with "
+             "`scripts/prefect-server.sh STORE` (local, state in the store) and export "
+             "PREFECT_API_URL=http://127.0.0.1:4200/api, or point it at your team's server.")
 
 
 def serve(inbox: str, store: str, cron: str, profile: str | None = None, name: str = "nightly") -> int:
     """Register deployment 'fleetsift-scheduled/NAME' on the cron schedule and run its flow runs until Ctrl-C.
 
-    Returns the exit code: 0 after Ctrl-C, 2 when no Prefect server is configured.
+    The caller checks PREFECT_API_URL first (flows/cli.py: exit 5 with NO_SERVER); returns 0 after Ctrl-C.
     """
-    if not os.environ.get("PREFECT_API_URL"):
-        print("fleetsift serve: PREFECT_API_URL is not set. Scheduling needs a Prefect server: start one with "
-              "`scripts/prefect-server.sh STORE` (local, state in the store) and export "
-              "PREFECT_API_URL=http://127.0.0.1:4200/api, or point it at your team's server.", file=sys.stderr)
-        return 2
     from fleetsift.flows.nightly import scheduled_run
 
     # Absolute paths: the deployment's runs may start in another working directory than this command.

@@ -11,7 +11,8 @@ Grid file (TOML), every key optional:
     window_s = [2.0, 8.0]
     hop_s = [1.0, 4.0]
     k = [1, 10]
-    kind = ["oas", "rbf", "lagged"]
+    kind = ["rbf", "lagged"]
+    shrinkage = ["oas"]
     metric = ["logeuclid", "euclid"]
     ridge = [1e-2, "auto"]     # optional: the descriptor's ridge (a noise floor on the standardised channels)
 
@@ -41,9 +42,9 @@ from fleetsift.errors import InputError
 from fleetsift.profile import Profile
 from fleetsift.flows.evaluate import prepare
 from fleetsift.tasks import flow_tasks, stages
-from fleetsift.vocabulary import DESCRIPTOR_KINDS, METRICS
+from fleetsift.vocabulary import DESCRIPTOR_KINDS, METRICS, SHRINKAGE_ESTIMATORS
 
-PARAMS = ("window_s", "hop_s", "k", "kind", "metric", "ridge")
+PARAMS = ("window_s", "hop_s", "k", "kind", "shrinkage", "metric", "ridge")
 DESIGNS = ("one_at_a_time", "full")
 MAX_POINTS = 100
 COLUMNS = ["point", "varied", *PARAMS, "auc", "auc_se", "n_windows", "n_anomalous", "n_flagged", "threshold",
@@ -52,7 +53,8 @@ COLUMNS = ["point", "varied", *PARAMS, "auc", "auc_se", "n_windows", "n_anomalou
 
 def base_values(profile: Profile) -> dict:
     return {"window_s": profile.windowing.window_s, "hop_s": profile.windowing.hop_s, "k": profile.scoring.k,
-            "kind": profile.descriptor.kind, "metric": profile.scoring.metric, "ridge": profile.descriptor.ridge}
+            "kind": profile.descriptor.kind, "shrinkage": profile.descriptor.shrinkage, "metric": profile.scoring.metric,
+            "ridge": profile.descriptor.ridge}
 
 
 def default_grid(profile: Profile) -> dict:
@@ -65,6 +67,7 @@ def default_grid(profile: Profile) -> dict:
             "hop_s": [b["hop_s"] / 2, b["hop_s"] * 2],
             "k": sorted({1, 2 * b["k"]} - {b["k"]}),
             "kind": [x for x in DESCRIPTOR_KINDS if x != b["kind"]],
+            "shrinkage": [x for x in SHRINKAGE_ESTIMATORS if x != b["shrinkage"]],
             "metric": [x for x in METRICS if x != b["metric"]], "ridge": []}
 
 
@@ -98,6 +101,8 @@ def parse_grid(data: dict, path: str, profile: Profile) -> dict:
                 ok, want = isinstance(v, int) and not isinstance(v, bool) and v >= 1, "integers >= 1"
             elif key == "kind":
                 ok, want = v in DESCRIPTOR_KINDS, f"values from {list(DESCRIPTOR_KINDS)}"
+            elif key == "shrinkage":
+                ok, want = v in SHRINKAGE_ESTIMATORS, f"values from {list(SHRINKAGE_ESTIMATORS)}"
             else:
                 ok, want = v in METRICS, f"values from {list(METRICS)}"
             if not ok:
@@ -142,7 +147,7 @@ def point_profile(profile: Profile, point: dict) -> Profile:
         profile,
         windowing=dataclasses.replace(profile.windowing, window_s=float(point["window_s"]),
                                       hop_s=float(point["hop_s"])),
-        descriptor=dataclasses.replace(profile.descriptor, kind=point["kind"],
+        descriptor=dataclasses.replace(profile.descriptor, kind=point["kind"], shrinkage=point["shrinkage"],
                                        ridge=point["ridge"] if point["ridge"] == "auto" else float(point["ridge"])),
         scoring=dataclasses.replace(profile.scoring, k=int(point["k"]), metric=point["metric"]),
         baseline=dataclasses.replace(profile.baseline, source="recordings" if profile.baseline.recordings
@@ -187,6 +192,8 @@ def plot_sweep(table: pd.DataFrame, base: dict, path: str) -> None:
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
 
+    from fleetsift.flows.report import ACCENT, INK, MUTED
+
     full = (table["varied"] == "all").any()
     shown = [p for p in PARAMS if (table[p].nunique() > 1 if full else (table["varied"] == p).any())] or ["k"]
     fig, axes = plt.subplots(1, len(shown), figsize=(2.3 * len(shown) + 0.6, 2.6), sharey=True, squeeze=False)
@@ -199,16 +206,16 @@ def plot_sweep(table: pd.DataFrame, base: dict, path: str) -> None:
         if full and len(ok):
             x = x + np.random.default_rng(0).uniform(-0.12, 0.12, len(x))
             means = ok.groupby(p)["auc"].mean()
-            ax.plot([xpos[v] for v in means.index], means.to_numpy(), color="#444", lw=1, zorder=3)
+            ax.plot([xpos[v] for v in means.index], means.to_numpy(), color=MUTED, lw=1, zorder=3)
         ax.errorbar(x, ok["auc"].to_numpy(float), yerr=ok["auc_se"].to_numpy(float), fmt="o", ms=4,
-                    color="#2b6cb0", ecolor="#90cdf4", capsize=2, lw=1)
+                    color=INK, ecolor=MUTED, capsize=2, lw=1)
         if not full:
             b = ok[ok["varied"] == "base"]
-            ax.plot(b[p].map(xpos), b["auc"], "o", ms=8, mfc="none", mec="#c05621", label="profile")
+            ax.plot(b[p].map(xpos), b["auc"], "o", ms=8, mfc="none", mec=ACCENT, label="profile")
         ax.set_xticks(range(len(vals)), [f"{v:g}" if isinstance(v, float) else str(v) for v in vals],
-                      fontsize=7, rotation=30 if p in ("kind", "metric") else 0)
+                      fontsize=7, rotation=30 if p in ("kind", "shrinkage", "metric") else 0)
         ax.set_title(p, fontsize=9)
-        ax.axhline(0.5, color="grey", lw=0.6, ls=":")
+        ax.axhline(0.5, color=MUTED, lw=0.6, ls=":")
         ax.set_xlim(-0.5, len(vals) - 0.5)
     axes[0, 0].set_ylabel("ROC AUC")
     if not full:
@@ -227,7 +234,7 @@ def sweep_flow(inbox: str, store: str, labels: str, grid_path: str | None = None
     """Map the fleet step over the grid's points on the cached stage outputs; write sweep.csv and sweep.png."""
     started = time.time()
     read_labels(labels)  # fail before any work on a bad labels file
-    profile, prepared, quarantined = prepare(inbox, store, profile_path, tables_fn=flow_tasks.tables_task,
+    profile, prepared, unscored = prepare(inbox, store, profile_path, tables_fn=flow_tasks.tables_task,
                                              embed_fn=flow_tasks.embed_task)
     if not prepared:
         raise InputError(inbox, "recordings", "at least one readable recording", "none")
@@ -246,7 +253,7 @@ def sweep_flow(inbox: str, store: str, labels: str, grid_path: str | None = None
     emb_reused = sum(p["embed"]["reused"] for p in prepared)
     emb_computed = sum(p["embed"]["computed"] for p in prepared)
     return {"csv": str(out / "sweep.csv"), "plot": str(out / "sweep.png"), "design": grid["design"],
-            "points": rows, "quarantined": quarantined,
+            "points": rows, "unscored": unscored,
             "stages": {"tables": {"computed": len(prepared) - reused, "reused": reused},
                        "embed": {"computed": emb_computed, "reused": emb_reused}},
             "elapsed_s": round(time.time() - started, 2)}

@@ -13,7 +13,8 @@ against it in one of three ways (``method``):
   al. 2013).
 
 A window never counts itself nor windows of its own recording within an exclusion zone. Every score is turned into
-a robust z against the references' own leave-one-out scores; the threshold is ``median + c * 1.4826 * MAD``.
+a robust z against the references' own leave-one-out scores; the threshold is ``median + c * robust sigma``
+with robust sigma = 1.4826 * MAD.
 """
 
 from __future__ import annotations
@@ -79,7 +80,7 @@ def robust_z(d, ref_d) -> np.ndarray:
 
 
 def threshold(ref_scores, c: float = Scoring.threshold_c) -> float:
-    """Flagging threshold ``median + c * 1.4826 * MAD`` of the finite reference scores.
+    """Flagging threshold ``median + c * robust sigma`` (robust sigma = 1.4826 * MAD) of the finite reference scores.
 
     1.4826 * MAD is the Gaussian-consistent robust standard deviation (common practice), so ``c = 3`` is the
     robust analogue of a 3-sigma rule.
@@ -90,25 +91,25 @@ def threshold(ref_scores, c: float = Scoring.threshold_c) -> float:
 
 # ------------------------------------------------------------------------------------------ kNN scoring
 
-def exclusion_mask(q_rec, q_t, r_rec, r_t, zone_s: float) -> np.ndarray:
-    """Bool ``(n, m)``: True where query i and reference j share a recording id and ``|t_q - t_r| < zone_s``.
+def exclusion_mask(q_rec, q_t, r_rec, r_t, exclusion_s: float) -> np.ndarray:
+    """Bool ``(n, m)``: True where query i and reference j share a recording id and ``|t_q - t_r| < exclusion_s``.
 
     A reference with the same recording id and the same time is always excluded (so a window never counts
-    itself, even with ``zone_s = 0``); ``zone_s = inf`` excludes the query's whole recording.
+    itself, even with ``exclusion_s = 0``); ``exclusion_s = inf`` excludes the query's whole recording.
     """
     q_rec, r_rec = np.asarray(q_rec).ravel(), np.asarray(r_rec).ravel()
     q_t, r_t = np.asarray(q_t, dtype=np.float64).ravel(), np.asarray(r_t, dtype=np.float64).ravel()
     if q_rec.shape != q_t.shape or r_rec.shape != r_t.shape:
         raise InputError(_SRC, "rec_ids/times", "one recording id and one time per window",
                          f"{q_rec.shape}/{q_t.shape} and {r_rec.shape}/{r_t.shape}")
-    zone_s = float(zone_s)
-    if not zone_s >= 0:
-        raise InputError(_SRC, "zone_s", "a number >= 0 (or inf)", zone_s)
+    exclusion_s = float(exclusion_s)
+    if not exclusion_s >= 0:
+        raise InputError(_SRC, "exclusion_s", "a number >= 0 (or inf)", exclusion_s)
     same = q_rec[:, None] == r_rec[None, :]
-    if np.isinf(zone_s):
+    if np.isinf(exclusion_s):
         return same
     dt = np.abs(q_t[:, None] - r_t[None, :])
-    return same & ((dt < zone_s) | (dt == 0))
+    return same & ((dt < exclusion_s) | (dt == 0))
 
 
 def _check_stat(stat: str) -> str:
@@ -273,7 +274,7 @@ class Baseline:
     k: int
     metric: str
     stat: str
-    zone_s: float
+    exclusion_s: float
     loo_scores: np.ndarray
     kept: np.ndarray
     ref_index: np.ndarray = field(default_factory=lambda: np.zeros(0, np.int64))
@@ -306,13 +307,13 @@ def _check_windows(descriptors, rec_ids, times):
     return D, rec, t
 
 
-def _self_scores(D, rec, t, *, k, metric, stat, zone_s, method, unit, index=None, mean=None):
+def _self_scores(D, rec, t, *, k, metric, stat, exclusion_s, method, unit, index=None, mean=None):
     """Leave-one-out scores of a set of windows against the others -> (scores, mean, k-distances, lrds)."""
-    if method == "mean":
+    if method == METHODS[2]:
         M = geometry.frechet_mean(D, metric) if mean is None else mean
         return mean_scores(D, M, metric), M, np.zeros(0), np.zeros(0)
     index = index if index is not None else KNNIndex(D, metric)
-    ex = exclusion_mask(rec, t, rec, t, zone_s)
+    ex = exclusion_mask(rec, t, rec, t, exclusion_s)
     dist, idx = neighbours(D, index, k, unit, rec, ex, _self=True)
     s = _stat(dist, k, stat, partial=unit == "recording")
     if method == "knn":
@@ -330,7 +331,7 @@ def _self_scores(D, rec, t, *, k, metric, stat, zone_s, method, unit, index=None
 
 
 def fit_references(references, rec_ids, times, k: int = Scoring.k, metric: str = Scoring.metric,
-                   stat: str = Scoring.knn_stat, zone_s: float = Scoring.exclusion_s, c: float = Scoring.threshold_c,
+                   stat: str = Scoring.knn_stat, exclusion_s: float = Scoring.exclusion_s, c: float = Scoring.threshold_c,
                    method: str = Scoring.method, unit: str = Scoring.knn_unit, approved=None) -> Baseline:
     """A baseline from references taken as normal as they stand (no trimming): a fleet's history, chosen
     recordings. Leave-one-out scores among the references give the robust scale and the threshold."""
@@ -341,23 +342,23 @@ def fit_references(references, rec_ids, times, k: int = Scoring.k, metric: str =
         raise InputError(_SRC, "references", "at least 2 reference windows", f"{len(R)}")
     M = geometry.frechet_mean(R, metric)
     index = KNNIndex(R, metric, whiten_point=M if metric == "riemann" else None)
-    loo, _, kd, lrd = _self_scores(R, rr, rt, k=k, metric=metric, stat=stat, zone_s=zone_s, method=method,
+    loo, _, kd, lrd = _self_scores(R, rr, rt, k=k, metric=metric, stat=stat, exclusion_s=exclusion_s, method=method,
                                    unit=unit, index=index, mean=M)
     if not np.any(np.isfinite(loo)):
         raise InputError(_SRC, "descriptors", f"references with at least k={k} allowed neighbours "
-                         f"(exclusion zone {zone_s} s)", "none: lower k or the exclusion zone, or add recordings")
+                         f"(exclusion zone {exclusion_s} s)", "none: lower k or the exclusion zone, or add recordings")
     med, mad = median_mad(loo)
     _, scale = _robust_scale(loo)
     ap = None if approved is None or len(approved) == 0 else np.asarray(approved, np.float64)
     return Baseline(references=R, ref_rec_ids=rr, ref_times=rt, mean=M, threshold=med + float(c) * scale, k=k,
-                    metric=metric, stat=stat, zone_s=float(zone_s), loo_scores=loo, kept=np.ones(len(R), bool),
+                    metric=metric, stat=stat, exclusion_s=float(exclusion_s), loo_scores=loo, kept=np.ones(len(R), bool),
                     ref_index=np.arange(len(R)), initial_scores=loo, c=float(c), median=med, mad=mad,
                     method=method, unit=unit, scale=scale, ref_kdist=kd, ref_lrd=lrd, approved=ap)
 
 
 def fit_baseline(descriptors, rec_ids, times, k: int = Scoring.k, metric: str = Scoring.metric,
                  stat: str = Scoring.knn_stat,
-                 zone_s: float = Scoring.exclusion_s, trim_fraction: float = Scoring.trim_fraction,
+                 exclusion_s: float = Scoring.exclusion_s, trim_fraction: float = Scoring.trim_fraction,
                  c: float = Scoring.threshold_c, max_refs: int | None = None, method: str = Scoring.method,
                  unit: str = Scoring.knn_unit) -> Baseline:
     """Fit a robust baseline from windows that are mostly normal (a first night, chosen recordings).
@@ -376,7 +377,7 @@ def fit_baseline(descriptors, rec_ids, times, k: int = Scoring.k, metric: str = 
         raise InputError(_SRC, "descriptors", "at least 2 windows to fit a baseline", f"{n}")
     if not 0.0 <= float(trim_fraction) < 1.0:
         raise InputError(_SRC, "trim_fraction", "a number in [0, 1)", trim_fraction)
-    initial = _self_scores(D, rec, t, k=k, metric=metric, stat=stat, zone_s=zone_s, method=method, unit=unit)[0]
+    initial = _self_scores(D, rec, t, k=k, metric=metric, stat=stat, exclusion_s=exclusion_s, method=method, unit=unit)[0]
     n_trim = int(np.floor(float(trim_fraction) * n))
     kept = np.ones(n, dtype=bool)
     if n_trim > 0:
@@ -385,7 +386,7 @@ def fit_baseline(descriptors, rec_ids, times, k: int = Scoring.k, metric: str = 
     ref_index = np.flatnonzero(kept)
     if max_refs is not None and len(ref_index) > int(max_refs):
         ref_index = ref_index[np.unique(np.linspace(0, len(ref_index) - 1, int(max_refs)).round().astype(int))]
-    bl = fit_references(D[ref_index], rec[ref_index], t[ref_index], k=k, metric=metric, stat=stat, zone_s=zone_s,
+    bl = fit_references(D[ref_index], rec[ref_index], t[ref_index], k=k, metric=metric, stat=stat, exclusion_s=exclusion_s,
                         c=c, method=method, unit=unit)
     bl.kept, bl.ref_index, bl.initial_scores = kept, ref_index, initial
     return bl
@@ -403,10 +404,10 @@ def raw_scores(descriptors, rec_ids, times, baseline: Baseline, index: KNNIndex 
     """
     D, rec, t = _check_windows(descriptors, rec_ids, times)
     bl = baseline
-    if bl.method == "mean":
+    if bl.method == METHODS[2]:
         return mean_scores(D, bl.mean, bl.metric)
     index = index if index is not None else bl.index()
-    ex = exclusion_mask(rec, t, bl.ref_rec_ids, bl.ref_times, bl.zone_s)
+    ex = exclusion_mask(rec, t, bl.ref_rec_ids, bl.ref_times, bl.exclusion_s)
     dist, idx = neighbours(D, index, bl.k, bl.unit, bl.ref_rec_ids, ex)
     if bl.method == "density":
         return local_outlier_factors(dist, idx, bl.ref_kdist, np.nan_to_num(bl.ref_lrd))
@@ -466,7 +467,7 @@ def attribute(descriptors, ref_mean, groups, n_groups: int) -> np.ndarray:
     return np.where(still | (tot <= 0), 1.0 / n_groups, S / np.where(tot > 0, tot, 1.0))
 
 
-def top_channels(shares, names, top: int = Scoring.top_channels) -> list[list[tuple[str, float]]]:
+def top_channels(shares, names, top: int = Scoring.n_top_channels) -> list[list[tuple[str, float]]]:
     """The ``top`` largest shares of each window as ``[(name, share), ...]``, largest first."""
     shares = np.asarray(shares, dtype=np.float64)
     names = list(names)
@@ -507,9 +508,9 @@ class OnlineScorer:
         :func:`raw_scores`; NaN where undefined)."""
         bl = self.baseline
         X = np.asarray(descriptor, dtype=np.float64)[None]
-        if bl.method == "mean":
+        if bl.method == METHODS[2]:
             return float(mean_scores(X, self.mean, bl.metric)[0])
-        ex = exclusion_mask([rec_id], [t], self.rec_ids, self.times, bl.zone_s)
+        ex = exclusion_mask([rec_id], [t], self.rec_ids, self.times, bl.exclusion_s)
         if bl.method == "density":
             dist, idx = neighbours(X, self.index, bl.k, bl.unit, self.rec_ids, ex)
             return float(local_outlier_factors(dist, idx, self.kdist, np.nan_to_num(self.lrd))[0])
@@ -524,7 +525,7 @@ class OnlineScorer:
         """Add one window to the references and update the running mean."""
         if self.baseline.method == "density":
             # A new reference changes its neighbours' densities too: refit instead (fit_references).
-            raise InputError(_SRC, "method", "knn or mean for an online reference update", "density")
+            raise InputError(_SRC, "method", "knn or frechet_mean for an online reference update", "density")
         X = np.asarray(descriptor, dtype=np.float64)
         self.index.add(X[None])
         self.rec_ids = np.concatenate([self.rec_ids, np.asarray([rec_id])])

@@ -9,23 +9,38 @@ from scipy.stats import rankdata
 from fleetsift.errors import InputError
 
 
+# A labels file names its intervals as the windows table names a window's: recording_id, t_start_s, t_end_s.
+LABEL_COLUMNS = ("recording_id", "t_start_s", "t_end_s")
+# The names before 0.3, still read for one release (with a deprecation message).
+LEGACY_LABEL_COLUMNS = dict(zip(("recording", "start_s", "end_s"), LABEL_COLUMNS))
+
+
 def read_labels(path: str) -> pd.DataFrame:
-    """Labels CSV with columns recording,start_s,end_s (seconds from the recording's first sample) and optionally
-    kind (free text; ``ignore`` marks an interval left out of the evaluation)."""
+    """Labels CSV with columns recording_id,t_start_s,t_end_s (seconds from the recording's first sample) and
+    optionally kind (free text; ``ignore`` marks an interval left out of the evaluation). The older header
+    recording,start_s,end_s is read too, with a deprecation message."""
+    want = ",".join(LABEL_COLUMNS)
     try:
         df = pd.read_csv(path)
     except (OSError, pd.errors.ParserError, pd.errors.EmptyDataError) as e:
-        raise InputError(path, "content", "a CSV with columns recording,start_s,end_s", str(e)) from None
-    for col in ("recording", "start_s", "end_s"):
+        raise InputError(path, "content", f"a CSV with columns {want}", str(e)) from None
+    old = [c for c in LEGACY_LABEL_COLUMNS if c in df.columns and LEGACY_LABEL_COLUMNS[c] not in df.columns]
+    if old:
+        import warnings
+
+        warnings.warn(f"{path}: label columns {','.join(old)} are deprecated: name them "
+                      f"{','.join(LEGACY_LABEL_COLUMNS[c] for c in old)}", FutureWarning, stacklevel=2)
+        df = df.rename(columns={c: LEGACY_LABEL_COLUMNS[c] for c in old})
+    for col in LABEL_COLUMNS:
         if col not in df.columns:
-            raise InputError(path, f"column {col!r}", "columns recording,start_s,end_s", list(df.columns))
-    for col in ("start_s", "end_s"):
+            raise InputError(path, f"column {col!r}", f"columns {want}", list(df.columns))
+    for col in LABEL_COLUMNS[1:]:
         if not pd.api.types.is_numeric_dtype(df[col]):
             raise InputError(path, f"column {col!r}", "numbers (seconds)", df[col].dtype)
-    bad = df[df["end_s"] < df["start_s"]]
+    bad = df[df["t_end_s"] < df["t_start_s"]]
     if len(bad):
-        raise InputError(path, f"row {bad.index[0] + 2}", "end_s >= start_s", bad.iloc[0].to_dict())
-    df["recording"] = df["recording"].astype(str)
+        raise InputError(path, f"row {bad.index[0] + 2}", "t_end_s >= t_start_s", bad.iloc[0].to_dict())
+    df["recording_id"] = df["recording_id"].astype(str)
     return df
 
 
@@ -39,7 +54,7 @@ def label_windows(windows: pd.DataFrame, labels: pd.DataFrame) -> np.ndarray:
     rec = windows["recording_id"].astype(str).to_numpy()
     y = np.zeros(len(windows), bool)
     rows = labels if "kind" not in labels.columns else labels[labels["kind"].astype(str) != IGNORE]
-    for r, s, e in rows[["recording", "start_s", "end_s"]].itertuples(index=False):
+    for r, s, e in rows[list(LABEL_COLUMNS)].itertuples(index=False):
         y |= (rec == r) & (centre >= s) & (centre <= e)
     return y
 
@@ -53,8 +68,7 @@ def ignored_windows(windows: pd.DataFrame, labels: pd.DataFrame) -> np.ndarray:
         return out
     t0, t1 = windows["t_start_s"].to_numpy(float), windows["t_end_s"].to_numpy(float)
     rec = windows["recording_id"].astype(str).to_numpy()
-    for r, s, e in labels[labels["kind"].astype(str) == IGNORE][["recording", "start_s", "end_s"]].itertuples(
-            index=False):
+    for r, s, e in labels[labels["kind"].astype(str) == IGNORE][list(LABEL_COLUMNS)].itertuples(index=False):
         out |= (rec == r) & (t0 < e) & (t1 > s)
     return out
 
@@ -105,19 +119,19 @@ def tangent_vectors(descriptors: np.ndarray, mean: np.ndarray) -> np.ndarray:
     return geometry.vec(geometry.logm(W @ np.asarray(descriptors, np.float64) @ W))
 
 
-def outlier_baselines(features: np.ndarray, seed: int = 0, n_neighbors: int = 20) -> dict[str, np.ndarray]:
+def comparison_scores(features: np.ndarray, seed: int = 0, n_neighbors: int = 20) -> dict[str, np.ndarray]:
     """Scores (higher = more unusual) of scikit-learn's IsolationForest (Liu et al. 2008) and LocalOutlierFactor
     (Breunig et al. 2000, novelty=False) fitted on all windows, the same unsupervised setting as ours.
 
-    Unlike our kNN scoring these know nothing of recordings: overlapping windows of one event are each other's
-    nearest neighbours, which hides a long event from LOF (our exclusion zone exists for that reason).
+    Unlike our kNN scoring these know nothing of recordings: overlapping windows of one span are each other's
+    nearest neighbours, which hides a long span from LOF (our exclusion zone exists for that reason).
     """
     from sklearn.ensemble import IsolationForest
     from sklearn.neighbors import LocalOutlierFactor
 
     X = np.asarray(features, np.float64)
     if len(X) < 3:
-        raise ValueError(f"{len(X)} windows: too few for the outlier baselines")
+        raise ValueError(f"{len(X)} windows: too few for the comparison detectors")
     iso = IsolationForest(n_estimators=200, random_state=seed).fit(X)
     lof = LocalOutlierFactor(n_neighbors=min(n_neighbors, len(X) - 1), novelty=False).fit(X)
     return {"isolation_forest": -iso.score_samples(X), "local_outlier_factor": -lof.negative_outlier_factor_}

@@ -253,7 +253,7 @@ def _windows(recs, mats, valids, center, scale, blocks, ridges, windowing, descr
             continue
         for b, ix in blocks.items():
             d, g = desc.describe(wins[ok][:, :, ix], kind=descriptor.kind, include_mean=descriptor.include_mean,
-                                 lags=descriptor.lags, ridge=ridges[b])
+                                 lags=descriptor.lags, ridge=ridges[b], shrinkage=descriptor.shrinkage)
             parts[b].append(d)
             groups[b] = g
         owner.append(np.full(int(ok.sum()), i))
@@ -269,7 +269,7 @@ def _windows(recs, mats, valids, center, scale, blocks, ridges, windowing, descr
 
 
 def _fit_kwargs(scoring_cfg, metric: str) -> dict:
-    return dict(k=scoring_cfg.k, metric=metric, stat=scoring_cfg.knn_stat, zone_s=scoring_cfg.exclusion_s,
+    return dict(k=scoring_cfg.k, metric=metric, stat=scoring_cfg.knn_stat, exclusion_s=scoring_cfg.exclusion_s,
                 c=scoring_cfg.threshold_c, method=scoring_cfg.method, unit=scoring_cfg.knn_unit)
 
 
@@ -500,7 +500,7 @@ def score_fleet(recs: list[RecordingFeatures], *, windowing, descriptor, scoring
             if not ok[j]:
                 tops.append("")
                 continue
-            order = np.argsort(-sh[j])[: scoring_cfg.top_channels]
+            order = np.argsort(-sh[j])[: scoring_cfg.n_top_channels]
             tops.append(",".join(f"{names[c_]}:{sh[j, c_]:.3f}" for c_ in order))
         out.append(WindowScores(recording_id=r.recording_id, t_start=t0, t_end=t1, valid=ok, scores=sc, flagged=fl,
                                 top_channels=tops, shares=sh, verdict=vd.astype(str)))

@@ -25,7 +25,7 @@ from fleetsift.errors import InputError
 from fleetsift.profile import Profile, VideoStream
 from fleetsift.location import ObjectPath, location, read_parquet, write_atomic
 from fleetsift.store import Store, code_version, stage_key
-from fleetsift.vocabulary import METRICS
+from fleetsift.vocabulary import METRICS, OK, PARTIAL, SCORED, UNSCORED
 from fleetsift.featurizers import recording, video, weights
 from fleetsift.scoring import fleet
 from fleetsift.scoring.history import Bank, Reviews, assemble
@@ -88,8 +88,8 @@ def recording_hash(store: Store, rec_dir: Path, files: list[Path]) -> str:
     return h.hexdigest()[:16]
 
 
-def quarantined(rec_id: str, reason: str, **extra) -> dict:
-    return {"recording_id": rec_id, "status": "quarantined", "reason": reason, **extra}
+def unscored(rec_id: str, reason: str, **extra) -> dict:
+    return {"recording_id": rec_id, "status": UNSCORED, "reason": reason, **extra}
 
 
 def run_tables(rec_dir: str, profile: Profile, store_root: str, cached_only: bool = False, force: bool = False) -> dict:
@@ -108,7 +108,7 @@ def run_tables(rec_dir: str, profile: Profile, store_root: str, cached_only: boo
         out = store.cache_path("tables", key)
         if out.exists() and not force:
             meta = json.loads(str(Store.load_arrays(out)["meta"]))
-            return {"recording_id": rec_id, "status": "ok", "path": str(out), "reused": True, "content": content,
+            return {"recording_id": rec_id, "status": OK, "path": str(out), "reused": True, "content": content,
                     **meta}
         if cached_only:
             raise NotCached(f"tables of {rec_id}")
@@ -121,9 +121,9 @@ def run_tables(rec_dir: str, profile: Profile, store_root: str, cached_only: boo
         meta = {"t0": t0, "duration_s": float(t[-1] - t[0]), "channels": names, "repairs": repairs,
                 "valid_share": float(valid.mean())}
         store.save_arrays(out, t=t, values=values, valid=valid, meta=np.array(json.dumps(meta)))
-        return {"recording_id": rec_id, "status": "ok", "path": str(out), "reused": False, "content": content, **meta}
+        return {"recording_id": rec_id, "status": OK, "path": str(out), "reused": False, "content": content, **meta}
     except InputError as e:
-        return quarantined(rec_id, str(e))
+        return unscored(rec_id, str(e))
 
 
 def _backbone(stream: VideoStream, store: Store, calibration=None):
@@ -238,10 +238,10 @@ def run_embed(rec_dir: str, profile: Profile, store_root: str, progress: bool = 
                 counts["damaged_spans"] += meta["damaged_spans"]
                 computed += 1
             outputs[stream.name] = str(out)
-        return {"recording_id": rec_id, "status": "ok", "paths": outputs, "reused": reused, "computed": computed,
+        return {"recording_id": rec_id, "status": OK, "paths": outputs, "reused": reused, "computed": computed,
                 **counts}
     except InputError as e:
-        return quarantined(rec_id, str(e))
+        return unscored(rec_id, str(e))
 
 
 def int8_calibration_recordings(inbox: Path, profile: Profile, n_recordings: int = 4) -> list[str]:
@@ -453,13 +453,15 @@ def run_write(store_root: str, run_id: str, started_at: float, profile: Profile,
         prim = w[w["metric"] == profile.scoring.metric]
         n_windows = int(prim["score"].notna().sum())
         n_flagged = int(prim["flagged"].sum())
-    n_q = int((rec_df["status"] == "quarantined").sum())
+    n_q = int((rec_df["status"] == UNSCORED).sum())
     runs = pd.DataFrame([{
         "run_id": run_id, "started_at": pd.Timestamp(started_at, unit="s", tz="UTC"),
-        "finished_at": pd.Timestamp(time.time(), unit="s", tz="UTC"), "code_version": code_ver,
+        "finished_at": pd.Timestamp(time.time(), unit="s", tz="UTC"), "fleetsift_version": code_ver,
+        "code_version": code_ver,  # deprecated name of fleetsift_version (it never held a stage code version)
         "profile_hash": profile.digest(), "baseline_id": baseline_id, "n_recordings": len(rec_df),
-        "n_scored": int((rec_df["status"] == "scored").sum()), "n_quarantined": n_q, "n_windows": n_windows,
-        "n_flagged": n_flagged, "status": "ok" if n_q == 0 else "partial", "inbox": inbox, **extra,
+        "n_scored": int((rec_df["status"] == SCORED).sum()), "n_unscored": n_q, "n_windows": n_windows,
+        "n_flagged": n_flagged, "status": OK if n_q == 0 else PARTIAL, "inbox": inbox, **extra,
     }])
     store.append("runs", runs)
-    return {"version": store.version("runs"), "windows_version": store.version("windows")}
+    versions = {t: store.version(t) for t in ("runs", "recordings", "windows")}
+    return {"version": versions["runs"], "windows_version": versions["windows"], "table_versions": versions}

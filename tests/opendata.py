@@ -105,7 +105,7 @@ class BuiltFleet:
     inbox: Path
     labels: Path
     recordings: list[str]
-    intervals: pd.DataFrame  # recording, start_s, end_s, kind
+    intervals: pd.DataFrame  # recording_id, t_start_s, t_end_s, kind
 
 
 PROFILE = """# BasicMotions (UEA archive, Bagnall et al. 2018) as a fleet: a watch IMU at ~10 Hz.
@@ -116,7 +116,8 @@ hop_s = {hop}
 max_gap_s = 0.35   # 3.5 nominal sample intervals
 
 [descriptor]
-kind = "ledoit_wolf"
+kind = "covariance"
+shrinkage = "ledoit_wolf"
 include_mean = true
 
 [scoring]
@@ -181,10 +182,10 @@ def build_fleet(out_dir: str | Path, n_recordings: int = 4, normal_cases: int = 
             if kind != "normal":
                 # Seconds from the recording's first sample; a case spans n_len samples of 1/RATE_HZ.
                 s = pos * n_len / RATE_HZ - t_first
-                rows.append({"recording": name, "start_s": round(s, 3), "end_s": round(s + n_len / RATE_HZ, 3),
+                rows.append({"recording_id": name, "t_start_s": round(s, 3), "t_end_s": round(s + n_len / RATE_HZ, 3),
                              "kind": kind.lower()})
         names.append(name)
-    intervals = pd.DataFrame(rows, columns=["recording", "start_s", "end_s", "kind"])
+    intervals = pd.DataFrame(rows, columns=["recording_id", "t_start_s", "t_end_s", "kind"])
     labels = out / "labels.csv"
     intervals.to_csv(labels, index=False)
     return BuiltFleet(inbox=out, labels=labels, recordings=names, intervals=intervals)
@@ -258,14 +259,14 @@ def build_pair_nights(out_dir: str | Path, normal: str, anomaly: str, seed: int 
             for pos, (_, is_fault) in enumerate(seq):
                 s = pos * n_len / RATE_HZ - t_first
                 if is_fault:
-                    rows.append({"recording": name, "start_s": round(s, 3), "end_s": round(s + n_len / RATE_HZ, 3),
+                    rows.append({"recording_id": name, "t_start_s": round(s, 3), "t_end_s": round(s + n_len / RATE_HZ, 3),
                                  "kind": anomaly.lower()})
                 if pos:  # the junction with the case before
-                    rows.append({"recording": name, "start_s": round(s - 0.05, 3), "end_s": round(s + 0.05, 3),
+                    rows.append({"recording_id": name, "t_start_s": round(s - 0.05, 3), "t_end_s": round(s + 0.05, 3),
                                  "kind": "ignore"})
             names.append(name)
         labels = inbox / "labels.csv"
-        pd.DataFrame(rows, columns=["recording", "start_s", "end_s", "kind"]).to_csv(labels, index=False)
+        pd.DataFrame(rows, columns=["recording_id", "t_start_s", "t_end_s", "kind"]).to_csv(labels, index=False)
         out.append(Night(inbox=inbox, labels=labels, recordings=names))
     return out
 
@@ -283,7 +284,7 @@ def score_nights(nights: list[Night], store: str | Path, comparison: bool = True
     out = []
     for n in nights:
         res = night_flow.run_night(plain, inbox=str(n.inbox), store=str(store), progress=False)
-        ev = evaluate_store(str(store), res["run_id"], str(n.labels), baselines=comparison)
+        ev = evaluate_store(str(store), res["run_id"], str(n.labels), comparison=comparison)
         ev["baseline"] = res["score"]["baseline"]
         out.append(ev)
     return out

@@ -1,7 +1,7 @@
 """Bad input, one test per kind, at the level where it is handled.
 
 Featurizer functions raise `InputError(file, field, expected, got)`; the plain stage functions
-(`stages.run_tables` / `run_embed`) turn that into a `{"status": "quarantined", "reason": ...}` dict so a
+(`stages.run_tables` / `run_embed`) turn that into a `{"status": "unscored", "reason": ...}` dict so a
 night goes on without the bad recording. Every check below asserts on all four parts of the message: the file, the
 field, what was expected and what was found.
 """
@@ -292,8 +292,8 @@ def test_constant_channel_is_accepted_and_descriptors_stay_positive_definite():
     z = (x - center) / scale
     starts, w = window_starts(len(t), 50.0, 4.0, 2.0)
     wins, ok = cut_windows(z, valid, starts, w)
-    for kind in ("ledoit_wolf", "oas", "rbf", "lagged"):
-        d, _ = descriptors.describe(wins[ok], kind=kind, include_mean=True, lags=2, ridge=1e-6)
+    for kind, shrinkage in (("covariance", "ledoit_wolf"), ("covariance", "oas"), ("rbf", "oas"), ("lagged", "oas")):
+        d, _ = descriptors.describe(wins[ok], kind=kind, include_mean=True, lags=2, ridge=1e-6, shrinkage=shrinkage)
         # Outside reference: numpy.linalg.eigvalsh (LAPACK syevd).
         assert np.isfinite(d).all()
         assert np.linalg.eigvalsh(d).min() >= 1e-6 * (1 - 1e-9), kind
@@ -551,7 +551,7 @@ def test_zero_frame_video(videos):
     check(e.value, "zero.avi", "frames", "at least one decodable video frame", "none")
 
 
-# --- stage level: quarantine dicts, never exceptions -----------------------------------------------------------------
+# --- stage level: unscored dicts, never exceptions -----------------------------------------------------------------
 
 def _variant(kind: str) -> tuple[pd.DataFrame | None, str | None]:
     df = imu_frame()
@@ -582,24 +582,24 @@ def _variant(kind: str) -> tuple[pd.DataFrame | None, str | None]:
     ("missing_channel", "channel 'gz'", "columns ['t', 'ax', 'ay']"),
     ("us_as_s", "time_unit", "median interval"),
 ])
-def test_run_tables_quarantines_with_the_full_message(tmp_path, stages, kind, field, got):
+def test_run_tables_leaves_unscored_with_the_full_message(tmp_path, stages, kind, field, got):
     df, text = _variant(kind)
     rec = write_rec(tmp_path / "inbox", "rover-x", df, text)
     out = stages.run_tables(str(rec), profile(), str(tmp_path / "store"))
-    assert out["status"] == "quarantined" and out["recording_id"] == "rover-x"
+    assert out["status"] == "unscored" and out["recording_id"] == "rover-x"
     assert out["reason"].startswith(f"{rec.resolve() / 'imu.csv'}: {field}: expected ")
     assert got in out["reason"]
     assert not list((tmp_path / "store" / "cache").glob("tables/*.npz"))  # nothing cached for a bad recording
 
 
-def test_run_tables_quarantines_non_overlapping_streams_and_outside_links(tmp_path, stages):
+def test_run_tables_leaves_unscored_non_overlapping_streams_and_outside_links(tmp_path, stages):
     rec = write_rec(tmp_path / "inbox", "rover-y")
     env = imu_frame(duration=10.0, channels=("temp",))
     env["t"] += 500.0
     env.to_csv(rec / "env.csv", index=False)
     prof = profile(more='\n[streams.env]\nkind = "table"\nfile = "env.csv"\nchannels = ["temp"]\n')
     out = stages.run_tables(str(rec), prof, str(tmp_path / "store"))
-    assert out["status"] == "quarantined"
+    assert out["status"] == "unscored"
     assert ": time span: expected streams whose time spans overlap, got imu.csv: 0.000..59.990 s, env.csv: " \
            "500.000..509.990 s" in out["reason"]
 
@@ -607,7 +607,7 @@ def test_run_tables_quarantines_non_overlapping_streams_and_outside_links(tmp_pa
     rec2.mkdir()
     (rec2 / "imu.csv").symlink_to(rec / "imu.csv")
     out = stages.run_tables(str(rec2), profile(), str(tmp_path / "store"))
-    assert out["status"] == "quarantined"
+    assert out["status"] == "unscored"
     assert out["reason"] == (f"{rec2.resolve() / 'imu.csv'}: streams.imu.file: expected a file inside the recording "
                              f"folder, got a link to {(rec / 'imu.csv').resolve()}")
 
@@ -639,12 +639,12 @@ def video_profile():
     ("header_only", "video stream", "streams"),
     ("zero", "frames", "none"),
 ])
-def test_run_embed_quarantines_bad_video(tmp_path, stages, videos, video_profile, name, field, got):
+def test_run_embed_leaves_bad_video_unscored(tmp_path, stages, videos, video_profile, name, field, got):
     rec = write_rec(tmp_path / "inbox", f"rover-{name}")
     src = videos[name]
     (rec / f"camera{src.suffix}").write_bytes(src.read_bytes())
     out = stages.run_embed(str(rec), video_profile, str(tmp_path / "store"), progress=False)
-    assert out["status"] == "quarantined", out
+    assert out["status"] == "unscored", out
     assert out["reason"].startswith(f"{rec.resolve() / ('camera' + src.suffix)}: {field}: expected ")
     assert got in out["reason"]
     assert not list((tmp_path / "store").glob("cache/embed/*.npz"))

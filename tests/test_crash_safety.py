@@ -174,7 +174,7 @@ def assert_matches_json(tables: dict, out: dict) -> None:
     w = w[(w["run_id"] == out["run_id"]) & (w["metric"] == out["metric"])]
     for rec in out["recordings"]:
         g = w[w["recording_id"] == rec["recording_id"]]
-        assert len(g) == rec["n_windows"] + rec["n_invalid_windows"]
+        assert len(g) == rec["n_windows"] + rec["n_unscored_windows"]
         assert int(g["flagged"].sum()) == rec["n_flagged"]
         assert np.isclose(g["score"].max(), rec["max_score"], rtol=0, atol=1e-6)
 
@@ -232,7 +232,7 @@ def test_rerun_after_embed_kill_reuses_finished_stages(embed_crash):
     assert out["stages"]["tables"] == {"computed": 0, "reused": N_REC}
     assert out["stages"]["embed"] == {"computed": N_REC - done, "reused": done}
     assert out["stages"]["score"] == {"computed": 1, "reused": 0}
-    assert [r["status"] for r in out["recordings"]] == ["scored"] * N_REC and out["quarantined"] == []
+    assert [r["status"] for r in out["recordings"]] == ["scored"] * N_REC and out["unscored"] == []
     tables = assert_store_consistent(embed_crash["store"])
     assert list(tables["runs"]["run_id"]) == [out["run_id"]]  # the killed run wrote no rows at all
     assert len(tables["recordings"]) == N_REC

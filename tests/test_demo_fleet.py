@@ -94,12 +94,12 @@ def test_profile_parses_with_the_schema(fleets):
 
 
 def _labels_ok(labels: pd.DataFrame, durations: dict):
-    assert list(labels.columns) == ["recording", "start_s", "end_s", "kind"]
+    assert list(labels.columns) == ["recording_id", "t_start_s", "t_end_s", "kind"]
     assert set(labels["kind"]) <= set(demo_fleet.KINDS)
     for r in labels.itertuples():
-        assert 0 <= r.start_s < r.end_s <= durations[r.recording] + 1e-9
+        assert 0 <= r.t_start_s < r.t_end_s <= durations[r.recording_id] + 1e-9
         if r.kind != "bump":
-            assert r.end_s - r.start_s >= 6.0 - 1e-9
+            assert r.t_end_s - r.t_start_s >= 6.0 - 1e-9
 
 
 def test_labels_inside_durations(fleets):
@@ -128,7 +128,7 @@ def test_planted_bearing_has_more_12_20_hz_power(fleets):
     labels = pd.read_csv(a / "labels.csv")
     bearing = labels[labels["kind"] == "bearing"]
     assert len(bearing) == 1, "the 2-recording plan plants a bearing fault"
-    rec, s, e = bearing.iloc[0][["recording", "start_s", "end_s"]]
+    rec, s, e = bearing.iloc[0][["recording_id", "t_start_s", "t_end_s"]]
     mid = (s + e) / 2
     t, ch = _uniform(pd.read_csv(a / rec / "imu.csv"))
     faulty = (t >= mid - 2) & (t < mid + 2)
@@ -178,7 +178,7 @@ def test_committed_sample():
         durations[n] = t.iloc[-1]
     _labels_ok(labels, durations)
     assert set(labels["kind"]) == set(demo_fleet.KINDS)  # every planted kind really made it into the data
-    assert len(set(recs) - set(labels["recording"])) >= 3  # fully normal recordings
-    assert labels.groupby("recording").size().max() <= 2
+    assert len(set(recs) - set(labels["recording_id"])) >= 3  # fully normal recordings
+    assert labels.groupby("recording_id").size().max() <= 2
     size = sum(p.stat().st_size for p in SAMPLE.rglob("*") if p.is_file())
     assert size < 12e6

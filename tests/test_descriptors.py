@@ -107,10 +107,10 @@ def test_describe_is_strictly_positive_definite_on_rank_deficient_windows(kind, 
 
 def test_describe_without_degeneracy_is_estimator_plus_ridge():
     X = windows(7, 3, 60, 4)
-    D, g = de.describe(X, kind="oas", include_mean=False, ridge=1e-3)
+    D, g = de.describe(X, kind="covariance", shrinkage="oas", include_mean=False, ridge=1e-3)
     np.testing.assert_allclose(D, de.oas(X) + 1e-3 * np.eye(4), rtol=1e-13)
     np.testing.assert_array_equal(g, [0, 1, 2, 3])
-    D2, g2 = de.describe(X, kind="ledoit_wolf", include_mean=True, ridge=1e-3)
+    D2, g2 = de.describe(X, kind="covariance", include_mean=True, ridge=1e-3)
     np.testing.assert_allclose(D2, de.gaussian_embedding(X.mean(axis=1), de.ledoit_wolf(X) + 1e-3 * np.eye(4)),
                                rtol=1e-13)
     np.testing.assert_array_equal(g2, [0, 1, 2, 3, -1])
@@ -123,8 +123,10 @@ def test_bad_windows_raise_input_error():
     bad[0, 3, 1] = np.nan
     with pytest.raises(InputError):
         de.describe(bad)
-    with pytest.raises(InputError):
-        de.describe(windows(8), kind="covariance")
+    with pytest.raises(InputError, match="kind"):  # an estimator is not a kind (it was before 0.3)
+        de.describe(windows(8), kind="ledoit_wolf")
+    with pytest.raises(InputError, match="shrinkage"):
+        de.describe(windows(8), shrinkage="rbf")
     with pytest.raises(InputError):
         de.describe(windows(8, n_samples=3), kind="lagged", lags=3)
     with pytest.raises(InputError):

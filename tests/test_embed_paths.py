@@ -265,14 +265,14 @@ def test_precision_reaches_the_embed_stage(camera_recording, tmp_path, monkeypat
     assert list((tmp_path / "store" / "cache" / "onnx").glob("*-int8-*.onnx"))
 
 
-def test_int8_refused_by_the_guard_quarantines_with_the_reason(camera_recording, tmp_path, monkeypatch):
+def test_int8_refused_by_the_guard_is_unscored_with_the_reason(camera_recording, tmp_path, monkeypatch):
     from inboxes import profile_toml
     from fleetsift.tasks import stages
 
     monkeypatch.setattr(E, "INT8_MIN_COSINE", 1.01)
     prof = parse_profile(profile_toml(camera={"image_size": 64, "threads": 1, "precision": "int8"}))
     out = stages.run_embed(str(camera_recording), prof, str(tmp_path / "store"), progress=False)
-    assert out["status"] == "quarantined"
+    assert out["status"] == "unscored"
     assert "precision: expected int8 embeddings within cosine" in out["reason"]
 
 

@@ -45,14 +45,14 @@ def cold(tmp_path_factory):
 def test_run_json_contract(cold):
     inbox, store, out, p = cold
     assert p.returncode == 0, p.stderr
-    for key in ("run_id", "store_version", "recordings", "quarantined", "stages"):
+    for key in ("run_id", "store_version", "recordings", "unscored", "quarantined", "stages"):
         assert key in out
     names = sorted(d.name for d in inbox.iterdir() if d.is_dir())
     assert sorted(r["recording_id"] for r in out["recordings"]) == names
     for r in out["recordings"]:
         assert r["status"] == "scored"
         assert r["n_windows"] > 20 and isinstance(r["max_score"], float) and r["n_flagged"] >= 0
-    assert out["quarantined"] == []
+    assert out["unscored"] == []
     assert out["stages"]["embed"]["computed"] == len(names)
     # The bag recording is read from the bag alone (scoring it beside the others needs the fleet's channel names).
     from fleetsift.flows.cli import DEMO_BAG_RECORDING

@@ -1,5 +1,5 @@
 """Evaluation: ROC AUC and its standard error against outside references, window labels, the descriptors the
-outlier baselines read, the parameter sweep; and (slow) `fleetsift evaluate` / `fleetsift sweep` on a demo fleet."""
+comparison detectors read, the parameter sweep; and (slow) `fleetsift evaluate` / `fleetsift sweep` on a demo fleet."""
 
 import json
 import os
@@ -14,7 +14,7 @@ from inboxes import table_inbox  # tests/ is on sys.path under pytest
 
 from fleetsift.scoring import baseline as scoring
 from fleetsift.scoring import fleet
-from fleetsift.scoring.evaluation import (hanley_mcneil_se, label_windows, outlier_baselines, read_labels,
+from fleetsift.scoring.evaluation import (hanley_mcneil_se, label_windows, comparison_scores, read_labels,
                                           roc_auc, roc_curve, tangent_vectors)
 from fleetsift.errors import InputError
 from fleetsift.profile import Descriptor, Profile, Scoring, TableStream, Windowing
@@ -71,19 +71,25 @@ def test_hanley_mcneil_limits():
 
 # ------------------------------------------------------------------------------------------ labels, windows
 
-def test_label_windows_by_centre(tmp_path):
+@pytest.mark.parametrize("header", ["recording_id,t_start_s,t_end_s", "recording,start_s,end_s"])
+def test_label_windows_by_centre(tmp_path, header):
     p = tmp_path / "labels.csv"
-    p.write_text("recording,start_s,end_s\nr1,10,20\nr2,0,1\n")
-    labels = read_labels(p)
+    p.write_text(header + "\nr1,10,20\nr2,0,1\n")
+    if header.startswith("recording,"):  # the pre-0.3 header still reads, with a deprecation message
+        with pytest.warns(FutureWarning, match="recording,start_s,end_s are deprecated"):
+            labels = read_labels(p)
+    else:
+        labels = read_labels(p)
+    assert list(labels.columns[:3]) == ["recording_id", "t_start_s", "t_end_s"]
     w = pd.DataFrame({"recording_id": ["r1"] * 4 + ["r2", "r3"], "t_start_s": [6, 8, 16, 18, 0, 10],
                       "t_end_s": [10, 12, 24, 26, 4, 20]})
     # centres 8, 10, 20, 22, 2, 15: inside r1's [10, 20] are 10 and 20 (closed interval); r2's [0, 1] misses 2.
     assert label_windows(w, labels).tolist() == [False, True, True, False, False, False]
 
 
-@pytest.mark.parametrize("text,field", [("recording,start_s\nr,1\n", "column 'end_s'"),
-                                        ("recording,start_s,end_s\nr,5,1\n", "row 2"),
-                                        ("recording,start_s,end_s\nr,a,1\n", "column 'start_s'")])
+@pytest.mark.parametrize("text,field", [("recording_id,t_start_s\nr,1\n", "column 't_end_s'"),
+                                        ("recording_id,t_start_s,t_end_s\nr,5,1\n", "row 2"),
+                                        ("recording_id,t_start_s,t_end_s\nr,a,1\n", "column 't_start_s'")])
 def test_read_labels_errors(tmp_path, text, field):
     p = tmp_path / "labels.csv"
     p.write_text(text)
@@ -92,7 +98,7 @@ def test_read_labels_errors(tmp_path, text, field):
     assert field in str(e.value) and str(p) in str(e.value)
 
 
-# ------------------------------------------------------------------------------------ outlier baselines
+# ------------------------------------------------------------------------------------ comparison detectors
 
 def _spd(rng, n, d, scale=1.0):
     A = rng.normal(size=(n, d, 3 * d)) * scale
@@ -111,16 +117,16 @@ def test_tangent_vectors_match_pyriemann():
     np.testing.assert_allclose(np.linalg.norm(T, axis=1), np.ravel(distance_riemann(X, M)), rtol=1e-10)
 
 
-def test_outlier_baselines_find_planted_outliers():
+def test_comparison_scores_find_planted_outliers():
     rng = np.random.default_rng(2)
     X = np.r_[rng.normal(size=(300, 6)), rng.normal(size=(12, 6)) * 0.3 + 6.0]
     y = np.r_[np.zeros(300, bool), np.ones(12, bool)]
-    sc = outlier_baselines(X)
+    sc = comparison_scores(X)
     assert set(sc) == {"isolation_forest", "local_outlier_factor"}
     for name, s in sc.items():
         assert s.shape == (312,) and roc_auc(y, s) > 0.95, name
     with pytest.raises(ValueError):
-        outlier_baselines(X[:2])
+        comparison_scores(X[:2])
 
 
 def _recordings(rng, n_rec=3, seconds=40.0, rate=20.0, burst=None):
@@ -218,7 +224,7 @@ def test_score_point_detects_a_planted_burst_and_reports_errors(tmp_path):
     rng = np.random.default_rng(4)
     prepared = _cached(tmp_path, _recordings(rng, n_rec=4, burst=(2, 20.0, 26.0)))
     labels = tmp_path / "labels.csv"
-    labels.write_text("recording,start_s,end_s\nr2,20,26\n")
+    labels.write_text("recording_id,t_start_s,t_end_s\nr2,20,26\n")
     prof = _profile(rate_hz=20.0, window_s=2.0, hop_s=1.0)
     prof = Profile(path=prof.path, streams=prof.streams, windowing=prof.windowing, scoring=Scoring(exclusion_s=5.0))
     pt = dict(base_values(prof), point=0, varied="base")
@@ -231,7 +237,7 @@ def test_score_point_detects_a_planted_burst_and_reports_errors(tmp_path):
 
 # ------------------------------------------------------------------------------------ preparing an inbox
 
-def test_evaluate_quarantines_a_too_short_recording_as_the_night_does(tmp_path):
+def test_evaluate_leaves_a_too_short_recording_unscored_as_the_night_does(tmp_path):
     # One preparation for both: `fleetsift evaluate` must score exactly the recordings a night scores, or its
     # recomputed baseline would differ from the run's. A 3 s recording is shorter than one 4 s window.
     from fleetsift.flows import evaluate, night
@@ -248,7 +254,7 @@ def test_evaluate_quarantines_a_too_short_recording_as_the_night_does(tmp_path):
         os.environ.clear()
         os.environ.update(saved)
     run_bad = [{"recording_id": r["recording_id"], "reason": r["reason"]} for r in ran["recordings"]
-               if r["status"] == "quarantined"]
+               if r["status"] == "unscored"]
     assert [b["recording_id"] for b in bad] == ["short"]
     assert bad == run_bad
     assert "windowing.window_s: expected a recording at least one window (4 s) long" in bad[0]["reason"]
@@ -284,8 +290,9 @@ def test_evaluate_cli_contract(evaluated):
 
     inbox, store, base, ev = evaluated
     assert set(ev["auc"]) == {"riemann", "logeuclid", "euclid"}
-    assert set(ev["baselines"]) == {"isolation_forest", "local_outlier_factor"}, ev.get("baselines_note")
-    for v in [*ev["auc"].values(), *ev["baselines"].values()]:
+    assert set(ev["comparison_detectors"]) == {"isolation_forest", "local_outlier_factor"}, \
+        ev.get("comparison_detectors_reason")
+    for v in [*ev["auc"].values(), *ev["comparison_detectors"].values()]:
         assert 0.0 <= v <= 1.0
     # The counts agree with the store's windows and the labels, computed here independently.
     w = Store(store).read("windows", run_id=ev["run_id"])

@@ -1,6 +1,6 @@
 """Property tests: whatever bytes a table file or a profile holds, the readers give a result or an InputError.
 
-Never another exception (a KeyError, TypeError, OverflowError... would stop a night instead of quarantining one
+Never another exception (a KeyError, TypeError, OverflowError... would stop a night instead of leaving one unscored
 recording). Where a result comes back, its invariants hold (strictly increasing finite clock, finite values; a
 profile's stream files stay inside the recording folder).
 """

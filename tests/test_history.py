@@ -221,11 +221,11 @@ def test_per_stream_blocks_and_the_ridge():
 def test_scoring_method_and_unit_reach_the_fleet_step():
     recs, _ = _recs(10, n_rec=4, fault_in=(1,))
     out = {}
-    for method in ("knn", "density", "mean"):
+    for method in ("knn", "density", "frechet_mean"):
         for unit in ("recording", "window"):
             res = _score(recs, sc=dataclasses.replace(SC, method=method, knn_unit=unit))
             out[method, unit] = np.concatenate([w.scores["riemann"][w.valid] for w in res.windows])
-    assert not np.allclose(out["mean", "recording"], out["knn", "recording"])
+    assert not np.allclose(out["frechet_mean", "recording"], out["knn", "recording"])
     assert not np.allclose(out["density", "recording"], out["knn", "recording"])
     assert not np.allclose(out["knn", "window"], out["knn", "recording"])
 
@@ -274,3 +274,14 @@ def test_the_report_says_why_tonight_joined_the_references(tmp_path):
         (st.root / "baselines").mkdir(exist_ok=True)
         np.savez(st.root / "baselines" / f"{bid}.npz", info=np.array(json.dumps({**info, "unlike_history": unlike})))
         assert says in _references_html(st, {"baseline_id": bid})
+
+
+def test_descriptor_shrinkage_reaches_the_fleet_step():
+    recs, _ = _recs(10, n_rec=4, fault_in=(1,))
+    out = {}
+    for kind in ("covariance", "lagged"):
+        for shrinkage in ("ledoit_wolf", "oas"):
+            res = _score(recs, desc=Descriptor(kind=kind, shrinkage=shrinkage, ridge=1e-3))
+            out[kind, shrinkage] = np.concatenate([w.scores["riemann"][w.valid] for w in res.windows])
+    assert not np.allclose(out["covariance", "ledoit_wolf"], out["covariance", "oas"])
+    assert not np.allclose(out["lagged", "ledoit_wolf"], out["lagged", "oas"])

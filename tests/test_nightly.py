@@ -332,8 +332,10 @@ def test_discover_skips_a_store_inside_the_inbox(tmp_path):
 
 
 def test_serve_without_a_server_explains_what_to_do(tmp_path):
-    p = fleetsift("serve", "--inbox", str(tmp_path), "--store", str(tmp_path / "store"), ok=(2,), timeout=120)
+    inbox = _table_fleet(tmp_path / "inbox", 1)
+    p = fleetsift("serve", "--inbox", str(inbox), "--store", str(tmp_path / "store"), ok=(5,), timeout=120)
     assert "PREFECT_API_URL" in p.stderr and "prefect-server.sh" in p.stderr
+    assert not (tmp_path / "store").exists()
 
 
 def _table_fleet(root: Path, n: int = 4) -> Path:

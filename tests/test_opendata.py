@@ -69,14 +69,14 @@ def test_built_recordings_hold_the_cases(tmp_path):
     assert not prof.video_streams()
     labels = pd.read_csv(f.labels)
     assert Counter(labels["kind"]) == {"running": 2, "badminton": 2}
-    assert "watch-01" not in set(labels["recording"])
+    assert "watch-01" not in set(labels["recording_id"])
     for lab in labels.itertuples():
-        df = pd.read_csv(f.inbox / lab.recording / "imu.csv")
+        df = pd.read_csv(f.inbox / lab.recording_id / "imu.csv")
         t = df["t"].to_numpy() - df["t"].iloc[0]
         dt = np.diff(t)
         assert abs(np.median(dt) - 0.1) < 0.005 and 0.005 < dt.std() < 0.03 and (dt > 0).all()
         # The labelled interval holds exactly one whole abnormal case of the data set, sample for sample.
-        inside = df[(t >= lab.start_s - 0.05) & (t < lab.end_s - 0.05)][list(opendata.CHANNELS)].to_numpy()
+        inside = df[(t >= lab.t_start_s - 0.05) & (t < lab.t_end_s - 0.05)][list(opendata.CHANNELS)].to_numpy()
         assert inside.shape == (100, 6)
         cls = lab.kind.capitalize()
         match = [np.allclose(inside, X[j].T, atol=1e-6) for j in np.flatnonzero(y == cls)]
@@ -107,13 +107,13 @@ def test_basicmotions_detection_through_the_pipeline(tmp_path):
     f = opendata.build_fleet(tmp_path / "inbox", seed=0)
     store = tmp_path / "store"
     ev = fleetsift("evaluate", "--inbox", str(f.inbox), "--labels", str(f.labels), "--store", str(store), "--json")
-    print("BasicMotions AUC", json.dumps({**ev["auc"], **ev["baselines"]}))
+    print("BasicMotions AUC", json.dumps({**ev["auc"], **ev["comparison_detectors"]}))
     assert ev["n_windows"] == 139 and ev["n_anomalous"] == 16
     assert ev["auc"]["riemann"] > 0.97
     assert ev["auc"]["logeuclid"] > 0.97
     assert ev["auc"]["euclid"] > 0.95
-    assert ev["baselines"]["isolation_forest"] > 0.9
-    assert 0.0 <= ev["baselines"]["local_outlier_factor"] <= 1.0  # near chance here (0.49): no floor
+    assert ev["comparison_detectors"]["isolation_forest"] > 0.9
+    assert 0.0 <= ev["comparison_detectors"]["local_outlier_factor"] <= 1.0  # near chance here (0.49): no floor
     # The automatic noise floor leaves the result insensitive to a hand-set one; the sweep measures it on the cache.
     grid = tmp_path / "grid.toml"
     grid.write_text("ridge = [1e-2]\n")
@@ -144,7 +144,7 @@ def test_pair_nights_hold_the_cases_and_mark_every_junction(tmp_path):
                 j = [k for k in range(len(X)) if np.allclose(c, X[k].T, atol=1e-6)]
                 assert len(j) == 1
                 used.append(j[0])
-            faults = lab[(lab["recording"] == rec) & (lab["kind"] == "standing")]
+            faults = lab[(lab["recording_id"] == rec) & (lab["kind"] == "standing")]
             assert len(faults) == (1 if rec.endswith(("01", "02", "03")) else 0)
     normal_used = [j for j in used if j in walking]
     assert len(normal_used) == len(set(normal_used)) == 20  # no normal case seen twice, over both nights

@@ -1,9 +1,11 @@
 """Sensor profile parsing and validation: every error names the file, the key, what was expected and found."""
 
+import warnings
+
 import pytest
 
 from fleetsift.errors import ProfileError
-from fleetsift.profile import load_profile, parse_profile
+from fleetsift.profile import Scoring, load_profile, parse_profile
 
 GOOD = """
 [windowing]
@@ -122,3 +124,36 @@ def test_recording_profile_lays_its_stream_sections_over_the_fleets(tmp_path):
     assert e.value.field == "streams.imu.topic" and e.value.file.endswith("rec-bag/profile.toml")
     # Without a recording profile the fleet's applies unchanged.
     assert profile_for(tmp_path, fleet) is fleet
+
+
+def test_renamed_profile_names_still_read_with_a_deprecation_message():
+    from fleetsift.profile import ProfileDeprecation
+
+    base = '[streams.imu]\nkind = "table"\nfile = "imu.csv"\nchannels = ["ax"]\n'
+    with pytest.warns(ProfileDeprecation, match="scoring.top_channels is deprecated, call it scoring.n_top_channels"):
+        old = parse_profile('[scoring]\ntop_channels = 5\n' + base)
+    assert old.scoring.n_top_channels == 5
+    with pytest.warns(ProfileDeprecation, match='scoring.method = "mean" is deprecated, write method = "frechet_mean"'):
+        assert parse_profile('[scoring]\nmethod = "mean"\n' + base).scoring.method == "frechet_mean"
+    with pytest.raises(ProfileError, match="both names"):
+        parse_profile('[scoring]\ntop_channels = 5\nn_top_channels = 4\n' + base)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")  # the new names read without a message
+        assert parse_profile('[scoring]\nn_top_channels = 4\nmethod = "frechet_mean"\n' + base).scoring == \
+            Scoring(n_top_channels=4, method="frechet_mean")
+
+
+def test_descriptor_kind_and_its_estimator_are_two_keys():
+    from fleetsift.profile import ProfileDeprecation
+
+    base = '[streams.imu]\nkind = "table"\nfile = "imu.csv"\nchannels = ["ax"]\n'
+    with pytest.warns(ProfileDeprecation, match='kind = "oas" is deprecated, write kind = "covariance", '
+                                                'shrinkage = "oas"'):
+        d = parse_profile('[descriptor]\nkind = "oas"\n' + base).descriptor
+    assert (d.kind, d.shrinkage) == ("covariance", "oas")
+    d = parse_profile('[descriptor]\nkind = "lagged"\nshrinkage = "oas"\n' + base).descriptor
+    assert (d.kind, d.shrinkage) == ("lagged", "oas")
+    with pytest.raises(ProfileError, match="shrinkage"):
+        parse_profile('[descriptor]\nkind = "oas"\nshrinkage = "ledoit_wolf"\n' + base)
+    with pytest.raises(ProfileError, match="descriptor.shrinkage"):
+        parse_profile('[descriptor]\nshrinkage = "rbf"\n' + base)

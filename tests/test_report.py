@@ -5,6 +5,7 @@ import base64
 import io
 import json
 import os
+import re
 import shutil
 import subprocess
 import sys
@@ -138,7 +139,7 @@ def make_store(base: Path):
     now = pd.Timestamp("2026-01-01 02:00:00", tz="UTC")
     recs = pd.DataFrame({
         "run_id": run_id, "recording_id": ["rover-a", "rover-b", "rover-c"], "content_hash": ["h1", "h2", ""],
-        "duration_s": [11.99, 11.99, None], "status": ["scored", "scored", "quarantined"],
+        "duration_s": [11.99, 11.99, None], "status": ["scored", "scored", "unscored"],
         "reason": ["", "", "rover-c/imu.csv: column 'ax': expected numbers, got text"],
         "path": [str(inbox / "rover-a"), str(inbox / "rover-b"), str(inbox / "rover-c")]})
     st.append("recordings", recs)
@@ -161,7 +162,7 @@ def make_store(base: Path):
     st.append("runs", pd.DataFrame([{
         "run_id": run_id, "started_at": now, "finished_at": now, "code_version": "0.1.0",
         "profile_hash": load_profile(inbox / "profile.toml").digest(), "baseline_id": "b-test", "n_recordings": 3,
-        "n_scored": 2, "n_quarantined": 1, "n_windows": 17, "n_flagged": 4, "status": "partial",
+        "n_scored": 2, "n_unscored": 1, "n_windows": 17, "n_flagged": 4, "status": "partial",
         "inbox": str(inbox)}]))
     return st, run_id, w, inbox
 
@@ -195,7 +196,7 @@ def test_one_safety_text_in_the_cli_json_help_report_and_readme(store_run):
     st, run_id, w, out = store_run
     summary = summarise({"run_id": run_id, "store": str(st.root), "store_version": 0, "recordings": [],
                          "stages": {}, "elapsed_s": 0.0}, "riemann")
-    assert summary["note"] == SAFETY_NOTE
+    assert summary["safety_note"] == summary["note"] == SAFETY_NOTE
     flat = lambda text: " ".join(text.split())  # noqa: E731 -- line wrapping aside
     assert flat(SAFETY_NOTE) in flat(build_parser().format_help())
     assert flat(SAFETY_NOTE) in flat(" ".join(parse(out).text))
@@ -220,11 +221,11 @@ def test_report_matches_store(store_run):
         assert int(row[5]) == int(g["flagged"].sum())
         assert int(row[6]) == len(flagged_spans(g[g["score"].notna()]))
         assert row[7].startswith(f"{g['score'].max():.3f}")
-    assert by_name["rover-c"][1] == "quarantined" and "expected numbers, got text" in by_name["rover-c"][8]
-    assert "expected numbers, got text" in text.split("Quarantined recordings")[1]
+    assert by_name["rover-c"][1] == "unscored" and "expected numbers, got text" in by_name["rover-c"][8]
+    assert "expected numbers, got text" in text.split("Unscored recordings")[1]
 
 
-def test_top_windows_one_per_event(store_run):
+def test_top_windows_one_per_span(store_run):
     st, run_id, w, out = store_run
     prim = w[(w["metric"] == "riemann") & w["score"].notna()]
     top = pick_top(prim, 10)
@@ -310,7 +311,7 @@ def test_report_errors(tmp_path):
     from fleetsift.store import Store
 
     st = Store(tmp_path / "empty").init()
-    with pytest.raises(ValueError, match="no runs"):
+    with pytest.raises(ValueError, match="committed runs"):
         write_report(str(st.root), None, str(tmp_path / "r.html"))
 
 
@@ -379,3 +380,33 @@ def test_report_body_is_reused_for_a_run_with_the_same_windows(tmp_path):
     other = rerun("20260103T020000Z-0a1b2c", changed)
     assert len(list(cache.glob("*.html"))) == 2
     assert other.read_text().replace("20260103T020000Z-0a1b2c", run_id) != first.read_text()
+
+
+def test_report_prints_settings_threshold_units_and_iso_times(tmp_path):
+    """Window, hop, k, c and metric as values, the threshold in words with c, units on the traces (from the
+    profile's `units`), ISO 8601 times, and a score axis that names its metric and statistic."""
+    from fleetsift.flows.report import score_axis_label
+    from fleetsift.profile import load_profile
+
+    st, run_id, w, inbox = make_store(tmp_path)
+    prof = inbox / "profile.toml"
+    with_units = PROFILE.replace('channels = ["ax", "ay", "az", "gx", "gy", "gz"]\n',
+                                 'channels = ["ax", "ay", "az", "gx", "gy", "gz"]\n'
+                                 'units = { ax = "m/s^2", gz = "rad/s" }\n')
+    prof.write_text("[scoring]\nk = 4\nknn_stat = \"mean\"\n" + with_units)
+    out = tmp_path / "r.html"
+    write_report(str(st.root), run_id, str(out), top_n=1)
+    doc = parse(out)
+    text = re.sub(r"\s+([,.])", r"\1", " ".join(" ".join(doc.text).split()))  # text split at the tags
+    assert ("Settings: window 2 s, hop 1 s, clock 50 Hz, metric riemann, method knn, k 4, knn_stat mean, c 2, "
+            "descriptor covariance.") in text
+    assert "median + c x robust sigma" in text and "robust sigma = 1.4826 x MAD" in text and "This run: c = 2." in text
+    assert "finished 2026-01-01T02:00:00Z" in text
+    (card,) = doc.cards
+    assert [i["alt"] for i in card["imgs"] if i["alt"].startswith("table traces")] == \
+        ["table traces of window 1 (ax in m/s^2, gz in rad/s)"]
+    # Units label the report only: they leave the stages' cache keys alone.
+    assert load_profile(prof).section("streams.imu") == \
+        load_profile(tmp_path / "inbox" / "profile.toml").section("streams.imu")
+    assert score_axis_label("riemann", load_profile(prof).scoring) == \
+        "robust z of the riemann distance, mean of k nearest (k = 4)"

@@ -121,5 +121,5 @@ def test_review_round_trip_through_the_cli(tmp_path):
     assert "reviewed fault" in html and "reviewed normal" in html and "known rattle" in html and "References:" in html
     # evaluate takes the verdicts as labels: only the two reviewed windows count.
     ev = json.loads(fleetsift("evaluate", "--inbox", str(inbox), "--reviews-from", str(store), "--json",
-                              "--no-baselines").stdout)
+                              "--no-comparison-detectors").stdout)
     assert ev["labels"] == "reviews" and ev["n_windows"] == 2 and ev["n_anomalous"] == 1

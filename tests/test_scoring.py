@@ -22,7 +22,7 @@ def fleet(seed=0, n_rec=4, per_rec=50, c=5, n_samples=120, outliers=()):
         W[r * per_rec + w, :, ch] *= 6.0
     rec = np.repeat(np.arange(n_rec), per_rec)
     t = np.tile(np.arange(per_rec) * 2.0 + 1.0, n_rec)
-    D, groups = de.describe(W, kind="ledoit_wolf", include_mean=True, ridge=1e-6)
+    D, groups = de.describe(W, kind="covariance", include_mean=True, ridge=1e-6)
     return D, rec, t, W, groups
 
 
@@ -31,11 +31,11 @@ def fleet(seed=0, n_rec=4, per_rec=50, c=5, n_samples=120, outliers=()):
 def test_exclusion_mask():
     q_rec, q_t = np.array(["a", "a", "b"]), np.array([0.0, 10.0, 0.0])
     r_rec, r_t = np.array(["a", "a", "b", "c"]), np.array([0.0, 4.0, 50.0, 0.0])
-    m = sc.exclusion_mask(q_rec, q_t, r_rec, r_t, zone_s=5.0)
+    m = sc.exclusion_mask(q_rec, q_t, r_rec, r_t, exclusion_s=5.0)
     np.testing.assert_array_equal(m, [[True, True, False, False],
                                       [False, False, False, False],
                                       [False, False, False, False]])
-    m_inf = sc.exclusion_mask(q_rec, q_t, r_rec, r_t, zone_s=np.inf)
+    m_inf = sc.exclusion_mask(q_rec, q_t, r_rec, r_t, exclusion_s=np.inf)
     np.testing.assert_array_equal(m_inf, [[True, True, False, False],
                                           [True, True, False, False],
                                           [False, False, True, False]])
@@ -116,7 +116,7 @@ PLANTED = [(0, 10, 2), (1, 25, 4), (2, 40, 0), (3, 5, 1)]
 def test_fit_baseline_trims_planted_outliers(metric, stat):
     D, rec, t, _, _ = fleet(6, outliers=PLANTED)
     planted = np.array([r * 50 + w for r, w, _ in PLANTED])
-    bl = sc.fit_baseline(D, rec, t, k=5, metric=metric, stat=stat, zone_s=20.0, trim_fraction=0.05, c=3.0)
+    bl = sc.fit_baseline(D, rec, t, k=5, metric=metric, stat=stat, exclusion_s=20.0, trim_fraction=0.05, c=3.0)
     assert bl.kept.sum() == len(D) - 10
     assert not bl.kept[planted].any()
     assert not np.isin(planted, bl.ref_index).any()
@@ -135,10 +135,10 @@ def test_fit_baseline_trims_planted_outliers(metric, stat):
 
 def test_fit_baseline_max_refs_and_errors():
     D, rec, t, _, _ = fleet(7, n_rec=2, per_rec=30)
-    bl = sc.fit_baseline(D, rec, t, k=3, metric="logeuclid", zone_s=5.0, trim_fraction=0.1, max_refs=20)
+    bl = sc.fit_baseline(D, rec, t, k=3, metric="logeuclid", exclusion_s=5.0, trim_fraction=0.1, max_refs=20)
     assert len(bl.references) == 20 and bl.kept.sum() == 54
     with pytest.raises(InputError):  # each recording excluded entirely and only one recording: no neighbours
-        sc.fit_baseline(D[:30], rec[:30], t[:30], k=3, zone_s=np.inf, trim_fraction=0.0)
+        sc.fit_baseline(D[:30], rec[:30], t[:30], k=3, exclusion_s=np.inf, trim_fraction=0.0)
 
 
 # ------------------------------------------------------------------------------------------ attribution
@@ -148,7 +148,7 @@ def test_attribution_names_the_perturbed_channel():
     M = geometry.frechet_mean(D)
     Wp = W[:5].copy()
     Wp[:, :, 3] *= 4.0
-    Dp, g = de.describe(Wp, kind="ledoit_wolf", include_mean=True, ridge=1e-6)
+    Dp, g = de.describe(Wp, kind="covariance", include_mean=True, ridge=1e-6)
     shares = sc.attribute(Dp, M, g, 5)
     np.testing.assert_allclose(shares.sum(axis=1), 1.0, atol=1e-12)
     assert np.all(shares >= 0)
@@ -179,7 +179,7 @@ def test_attribution_row_energy_by_hand():
 @pytest.mark.parametrize("metric", ["riemann", "logeuclid", "euclid"])
 def test_online_scorer_equals_batch(metric):
     D, rec, t, _, _ = fleet(10, n_rec=3, per_rec=30)
-    bl = sc.fit_baseline(D[:60], rec[:60], t[:60], k=4, metric=metric, zone_s=10.0, trim_fraction=0.1)
+    bl = sc.fit_baseline(D[:60], rec[:60], t[:60], k=4, metric=metric, exclusion_s=10.0, trim_fraction=0.1)
     online = sc.OnlineScorer(bl)
     batch = sc.score(D, rec, t, bl)
     got = np.array([online.score(D[i], rec[i], t[i]) for i in range(len(D))])
@@ -197,7 +197,7 @@ def test_online_scorer_equals_batch(metric):
 
 def test_online_running_mean_and_bound():
     D, rec, t, _, _ = fleet(11, n_rec=2, per_rec=20)
-    bl = sc.fit_baseline(D[:20], rec[:20], t[:20], k=3, metric="euclid", zone_s=3.0, trim_fraction=0.0)
+    bl = sc.fit_baseline(D[:20], rec[:20], t[:20], k=3, metric="euclid", exclusion_s=3.0, trim_fraction=0.0)
     online = sc.OnlineScorer(bl, max_refs=25)
     for i in range(20, 40):
         online.update(D[i], rec[i], t[i])
@@ -206,7 +206,7 @@ def test_online_running_mean_and_bound():
     assert len(online.references) == 25
     np.testing.assert_array_equal(online.references, D[15:40])  # oldest dropped first
     # Riemann: the recursive (inductive) mean approaches the Karcher mean for concentrated data.
-    blr = sc.fit_baseline(D[:20], rec[:20], t[:20], k=3, metric="riemann", zone_s=3.0, trim_fraction=0.0)
+    blr = sc.fit_baseline(D[:20], rec[:20], t[:20], k=3, metric="riemann", exclusion_s=3.0, trim_fraction=0.0)
     onr = sc.OnlineScorer(blr)
     for i in range(20, 40):
         onr.update(D[i], rec[i], t[i])
@@ -291,7 +291,7 @@ def test_density_scores_are_sklearns_local_outlier_factor():
     D, rec, t, _, _ = fleet(15, n_rec=1, per_rec=60, outliers=[(0, 5, 1)])
     R, Q = D[:45], D[45:]
     ids = np.arange(60).astype(str)  # one recording per window: only the window itself is excluded
-    bl = sc.fit_references(R, ids[:45], np.zeros(45), k=5, metric="riemann", zone_s=0.0, method="density",
+    bl = sc.fit_references(R, ids[:45], np.zeros(45), k=5, metric="riemann", exclusion_s=0.0, method="density",
                            unit="window")
     lof = LocalOutlierFactor(n_neighbors=5, metric="precomputed").fit(geometry.pairwise_distance(R, R))
     np.testing.assert_allclose(bl.loo_scores, -lof.negative_outlier_factor_, rtol=1e-7)
@@ -307,7 +307,7 @@ def test_mean_method_is_the_distance_to_the_references_frechet_mean():
     from pyriemann.geometry.mean import mean_riemann
 
     D, rec, t, _, _ = fleet(16, n_rec=3, per_rec=30, outliers=[(1, 3, 0)])
-    bl = sc.fit_baseline(D, rec, t, k=3, metric="riemann", zone_s=10.0, trim_fraction=0.1, method="mean")
+    bl = sc.fit_baseline(D, rec, t, k=3, metric="riemann", exclusion_s=10.0, trim_fraction=0.1, method="frechet_mean")
     M = mean_riemann(bl.references)
     np.testing.assert_allclose(bl.mean, M, atol=1e-8)
     want = np.array([distance_riemann(x, M) for x in D])
@@ -317,10 +317,10 @@ def test_mean_method_is_the_distance_to_the_references_frechet_mean():
     assert z[33] > bl.c and np.median(z[bl.kept]) == pytest.approx(0.0, abs=0.5)
 
 
-@pytest.mark.parametrize("method", ["knn", "density", "mean"])
+@pytest.mark.parametrize("method", ["knn", "density", "frechet_mean"])
 def test_zscore_over_c_is_the_threshold_in_the_methods_units(method):
     D, rec, t, _, _ = fleet(17, n_rec=4, per_rec=30, outliers=PLANTED[:2])
-    bl = sc.fit_baseline(D, rec, t, k=3, zone_s=10.0, trim_fraction=0.1, method=method, unit="recording", c=3.0)
+    bl = sc.fit_baseline(D, rec, t, k=3, exclusion_s=10.0, trim_fraction=0.1, method=method, unit="recording", c=3.0)
     raw = sc.score(D, rec, t, bl)
     z = sc.zscore(raw, bl)
     np.testing.assert_array_equal(z > 3.0, raw > bl.threshold)
@@ -333,14 +333,14 @@ def test_zscore_over_c_is_the_threshold_in_the_methods_units(method):
 def test_methods_and_units_give_different_scores():
     D, rec, t, _, _ = fleet(18, n_rec=4, per_rec=30, outliers=PLANTED[:2])
     out = {}
-    for method in ("knn", "density", "mean"):
+    for method in ("knn", "density", "frechet_mean"):
         for unit in ("recording", "window"):
-            bl = sc.fit_baseline(D, rec, t, k=3, zone_s=10.0, trim_fraction=0.1, method=method, unit=unit)
+            bl = sc.fit_baseline(D, rec, t, k=3, exclusion_s=10.0, trim_fraction=0.1, method=method, unit=unit)
             out[method, unit] = sc.zscore(sc.score(D, rec, t, bl), bl)
     keys = list(out)
     for i, a in enumerate(keys):
         for b in keys[i + 1:]:
-            if a[0] == b[0] == "mean":
+            if a[0] == b[0] == "frechet_mean":
                 continue  # the distance to the mean counts no neighbours
             assert not np.allclose(out[a], out[b]), (a, b)
     with pytest.raises(InputError, match="method"):
@@ -350,7 +350,7 @@ def test_methods_and_units_give_different_scores():
 def test_approved_windows_stop_a_false_alarm():
     # A window reviewed as normal: itself and windows like it score no more than their distance to it.
     D, rec, t, _, _ = fleet(19, n_rec=4, per_rec=30, outliers=[(2, 10, 3)])
-    bl = sc.fit_baseline(D, rec, t, k=3, zone_s=10.0, trim_fraction=0.1)
+    bl = sc.fit_baseline(D, rec, t, k=3, exclusion_s=10.0, trim_fraction=0.1)
     i = 2 * 30 + 10
     assert sc.zscore(sc.score(D[i:i + 1], rec[i:i + 1], t[i:i + 1], bl), bl)[0] > bl.c
     bl.approved = D[i:i + 1]
@@ -361,10 +361,10 @@ def test_approved_windows_stop_a_false_alarm():
                                  sc.score(D[others], rec[others], t[others], before) + 1e-12)
 
 
-@pytest.mark.parametrize("method,unit", [("knn", "recording"), ("mean", "window"), ("density", "recording")])
+@pytest.mark.parametrize("method,unit", [("knn", "recording"), ("frechet_mean", "window"), ("density", "recording")])
 def test_online_scorer_equals_batch_for_every_method(method, unit):
     D, rec, t, _, _ = fleet(20, n_rec=3, per_rec=30)
-    bl = sc.fit_baseline(D[:60], rec[:60], t[:60], k=3, zone_s=10.0, trim_fraction=0.1, method=method, unit=unit)
+    bl = sc.fit_baseline(D[:60], rec[:60], t[:60], k=3, exclusion_s=10.0, trim_fraction=0.1, method=method, unit=unit)
     online = sc.OnlineScorer(bl)
     got = np.array([online.score(D[i], rec[i], t[i]) for i in range(len(D))])
     np.testing.assert_allclose(got, sc.score(D, rec, t, bl), atol=1e-10)

@@ -941,10 +941,11 @@ PROFILE_TOML = """\
 rate_hz = 50.0        # common clock rate (Hz)
 window_s = 4.0        # window length (s)
 hop_s = 2.0           # hop between window starts (s)
-max_gap_s = 0.25      # a window straddling a gap in any stream longer than this is invalid
+max_gap_s = 0.25      # a window straddling a gap in any stream longer than this is left unscored
 
 [descriptor]
-kind = "ledoit_wolf"  # ledoit_wolf | oas | rbf | lagged
+kind = "covariance"   # covariance | rbf (kernel between channels) | lagged (covariance of the delay embedding)
+shrinkage = "ledoit_wolf"  # estimator of covariance and lagged: ledoit_wolf (Ledoit & Wolf 2004) | oas (Chen 2010)
 include_mean = true   # Gaussian embedding of window mean + covariance into SPD(c+1) (Calvo & Oller 1990)
 lags = 3              # lagged only
 ridge = "auto"        # noise floor added to every window covariance, in standardised units; "auto": the smallest
@@ -954,16 +955,17 @@ per_stream = true     # one descriptor per stream (imu, camera), combined by the
 [scoring]
 metric = "riemann"    # primary metric: riemann | logeuclid | euclid
 method = "knn"        # knn: k-th nearest neighbour distance | density: local outlier factor |
-                      # mean: distance to the references' Frechet mean
+                      # frechet_mean: distance to the references' Frechet mean
 k = 3                 # neighbours
 knn_unit = "recording"  # recording: the nearest window of each of the k nearest recordings (a behaviour is normal
                         # only where k recordings show it) | window: the k nearest windows
 knn_stat = "kth"      # kth | mean (of the k distances)
 exclusion_s = 30.0    # same-recording neighbours within this many seconds never count
 trim_fraction = 0.1   # a first night's batch baseline: drop this share of highest-scoring windows and refit
-threshold_c = 3.0     # flag when the score, a robust z, exceeds c (median + c x 1.4826 MAD of the references'
-                      # leave-one-out scores: c = 3 is about three standard deviations)
-top_channels = 3      # channels named per flagged window
+threshold_c = 3.0     # c: flag a window whose distance exceeds median + c x robust sigma of the references'
+                      # leave-one-out distances (robust sigma = 1.4826 x MAD), i.e. whose robust z exceeds c;
+                      # c = 3 is about three standard deviations
+n_top_channels = 3    # how many channels each flagged window names (its top channels)
 
 [baseline]
 source = "history"    # history: earlier nights' unflagged windows (tonight's batch on a first night) |
@@ -980,6 +982,7 @@ time_column = "t"
 time_unit = "s"
 channels = ["ax", "ay", "az", "gx", "gy", "gz"]   # accel m/s^2 (x forward, y left, z up), gyro rad/s
 clock_offset_s = 0.0
+units = { ax = "m/s^2", ay = "m/s^2", az = "m/s^2", gx = "rad/s", gy = "rad/s", gz = "rad/s" }  # on the report's traces
 [streams.imu.calibration]
 ax = { bias = 0.0, scale = 1.0 }   # calibrated = (raw - bias) * scale
 ay = { bias = 0.0, scale = 1.0 }
@@ -1045,7 +1048,7 @@ def make_fleet(out_dir: str | Path, n_recordings: int = 8, duration_s: float = 6
         rng = np.random.default_rng([seed, i])
         for a, b, k in make_recording(out / name, rng, kinds, duration_s, fps, size, codec):
             rows.append(f"{name},{a:.2f},{b:.2f},{k}")
-    (out / "labels.csv").write_text("recording,start_s,end_s,kind\n" + "".join(r + "\n" for r in rows))
+    (out / "labels.csv").write_text("recording_id,t_start_s,t_end_s,kind\n" + "".join(r + "\n" for r in rows))
     (out / "profile.toml").write_text(PROFILE_TOML.replace("clock_offset_s = -0.35",
                                                            f"clock_offset_s = {-CAMERA_OFFSET_S}"))
     return [name for name, _ in plan]
