@@ -112,7 +112,7 @@ def demo_accuracy(work: Path, skip_threshold: float | None = None) -> None:
         store = work / f"store-{len(res)}"
         t0 = time.perf_counter()
         out = night.run_night(plain, inbox=str(inbox), store=str(store), profile_path=str(prof), progress=False)
-        ev = evaluate_store(str(store), out["run_id"], str(inbox / "labels.csv"), baselines=False)
+        ev = evaluate_store(str(store), out["run_id"], str(inbox / "labels.csv"), comparison=False)
         w = Store(store).read("windows")
         w = w[w["metric"] == "riemann"]
         mid = (w["t_start_s"] + w["t_end_s"]) / 2

@@ -312,7 +312,7 @@ def test_demo_night_auc_and_visual_scores_match_plain_float32(tmp_path):
         prof.write_text(prof_text)
         store = tmp_path / f"store-{name}"
         out = night.run_night(steps, inbox=str(inbox), store=str(store), profile_path=str(prof), progress=False)
-        ev = evaluate_store(str(store), out["run_id"], str(inbox / "labels.csv"), baselines=False)
+        ev = evaluate_store(str(store), out["run_id"], str(inbox / "labels.csv"), comparison=False)
         w = Store(store).read("windows")
         w = w[w["metric"] == "riemann"].set_index(["recording_id", "window_index"])
         res[name] = (ev["auc"], w, out["embed_frames"])

@@ -171,8 +171,8 @@ def test_every_ordered_pair_of_classes_as_a_fleet(tmp_path):
         assert not ev2["baseline"]["tonight"]  # the fault recurring tonight is not among tonight's references
         night1.append(ev1["auc"]["riemann"])
         night2.append(ev2["auc"]["riemann"])
-        iso1.append(ev1["baselines"]["isolation_forest"])
-        iso2.append(ev2["baselines"]["isolation_forest"])
+        iso1.append(ev1["comparison_detectors"]["isolation_forest"])
+        iso2.append(ev2["comparison_detectors"]["isolation_forest"])
         print(f"{normal:>9} -> {anomaly:<9} night 1 {night1[-1]:.3f} (IF {iso1[-1]:.3f})  "
               f"night 2 {night2[-1]:.3f} (IF {iso2[-1]:.3f})")
     assert np.mean(night1) >= 0.95
