@@ -126,6 +126,17 @@ def run_tables(rec_dir: str, profile: Profile, store_root: str, cached_only: boo
         return unscored(rec_id, str(e))
 
 
+def onnx_cache_dir(store: Store) -> Path:
+    """Where the backbone's ONNX export is cached: in a local store, its cache folder; with a store on object
+    storage, this machine's temporary folder (ONNX Runtime loads a graph from a local file, and each worker of a
+    cluster that shares no disk exports it once; the file name holds every input of the export)."""
+    if store.remote:
+        import tempfile
+
+        return Path(tempfile.gettempdir()) / "fleetsift-onnx"
+    return store.root / "cache" / "onnx"
+
+
 def _backbone(stream: VideoStream, store: Store, calibration=None):
     """The stream's backbone, loaded once per process (Prefect's worker threads share it; its calls are
     serialised inside, so concurrent recordings never run more than `threads` model threads)."""
@@ -140,7 +151,7 @@ def _backbone(stream: VideoStream, store: Store, calibration=None):
                                      image_size=stream.image_size)
             if stream.runtime == "onnxruntime":
                 fp = weights.backbone_fingerprint(stream.backbone, stream.weights or None)
-                bb.use_onnxruntime(store.root / "cache" / "onnx", fp, stream.precision, calibration)
+                bb.use_onnxruntime(onnx_cache_dir(store), fp, stream.precision, calibration)
             _BACKBONES[key] = bb
         return _BACKBONES[key]
 
