@@ -23,9 +23,10 @@ def nightly_flow(inbox: str, store: str, profile_path: str | None = None, run_id
 @flow(name="fleetsift-scheduled", log_prints=True)
 def scheduled_run(inbox: str, store: str, profile_path: str | None = None) -> dict:
     """What a scheduled deployment runs: the nightly flow under the store's write lock, plus the report."""
+    from fleetsift.flows.cli import storage_settings
     from fleetsift.flows.report import write_report
 
-    st = Store(store).init()
+    st = Store(store, storage_settings(inbox, profile_path)).init()
     with st.lock(wait_s=3600):
         result = nightly_flow(inbox=inbox, store=store, profile_path=profile_path, progress=False)
     out = st.root / "reports" / f"{result['run_id']}.html"
