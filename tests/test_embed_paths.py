@@ -187,7 +187,7 @@ def test_int8_is_kept_only_when_it_passes_the_accuracy_guard(tmp_path, monkeypat
 
 def test_profile_keys_of_the_faster_paths_are_validated():
     base = '[windowing]\n[streams.imu]\nkind = "table"\nfile = "imu.csv"\ntime_column = "t"\n' \
-           '[streams.camera]\nkind = "video"\nfile = "camera.mp4"\n'
+           'channels = ["ax"]\n[streams.camera]\nkind = "video"\nfile = "camera.mp4"\n'
     p = parse_profile(base + 'skip_threshold = 0.02\nruntime = "torch"\nprecision = "float32"\n')
     cam = p.streams["camera"]
     assert (cam.skip_threshold, cam.runtime, cam.precision) == (0.02, "torch", "float32")
