@@ -241,9 +241,9 @@ class Backbone:
             torch.set_num_threads(self.threads)
 
     def _features(self, x: torch.Tensor) -> np.ndarray:
-        # One model call at a time: Prefect's worker threads embed several recordings at once, and each call
-        # already uses `threads` cores; concurrent calls would oversubscribe the cores and evict each other's
-        # caches (the flow's embedding ran 25 % slower than the same loop alone). Decoding still overlaps.
+        # One model call at a time: when Prefect's worker threads embed several recordings at once, each call
+        # already uses `threads` cores, and concurrent calls would oversubscribe them (with two torch threads on
+        # a busy core, bench/embed.py measured throughput falling several-fold). Decoding still overlaps.
         with self._lock:
             if self._session is not None:
                 return self._session.run(None, {"x": x.contiguous().numpy()})[0]

@@ -119,3 +119,31 @@ def test_maintain_sweeps_old_temporary_files_of_killed_writers(tmp_path, capsys)
     assert not any(p.exists() for p in leftovers)
     assert fresh.exists() and real.exists() and inside_table.exists()
     assert len(st.read("recordings")) == 2
+
+
+def test_row_writer_streams_rows_into_an_npz_numpy_reads(tmp_path):
+    import numpy as np
+
+    store = Store(tmp_path / "store")
+    out = tmp_path / "store" / "cache" / "embed" / "k.npz"
+    rng = np.random.default_rng(0)
+    parts = [rng.standard_normal((n, 5)).astype(np.float32) for n in (3, 0, 7, 1)]
+    with store.row_writer(out, "emb", 5) as w:
+        for p in parts:
+            w.append(p)
+        assert not out.exists()  # nothing at the path before the commit
+        w.commit(t=np.arange(11.0), meta=np.array('{"frames": 11}'))
+    got = Store.load_arrays(out)
+    np.testing.assert_array_equal(got["emb"], np.concatenate(parts))
+    assert got["emb"].dtype == np.float32 and got["emb"].shape == (11, 5)
+    np.testing.assert_array_equal(got["t"], np.arange(11.0))
+    assert str(got["meta"]) == '{"frames": 11}'
+    assert sorted(p.name for p in out.parent.iterdir()) == ["k.npz"]  # no temporary file left
+
+    # An exception inside `with` leaves no output and no temporary file.
+    other = out.with_name("j.npz")
+    with pytest.raises(RuntimeError):
+        with store.row_writer(other, "emb", 5) as w:
+            w.append(parts[0])
+            raise RuntimeError("decode failed")
+    assert sorted(p.name for p in out.parent.iterdir()) == ["k.npz"]
