@@ -84,10 +84,9 @@ def demo_accuracy(work: Path, skip_threshold: float | None = None) -> None:
     scores of windows inside the planted visual anomalies (pallet, person), both in one run."""
     import shutil
 
-    import pandas as pd
-
     from fleetsift.flows import night
     from fleetsift.flows.evaluate import evaluate_store
+    from fleetsift.scoring.evaluation import read_labels
     from fleetsift.store import Store
     from fleetsift.tasks import stages
 
@@ -95,7 +94,7 @@ def demo_accuracy(work: Path, skip_threshold: float | None = None) -> None:
                         write=stages.run_write)
     inbox = work / "demo-inbox"
     shutil.copytree(ROOT / "sample_raw", inbox, ignore=shutil.ignore_patterns("*.py", "README.md"))
-    labels = pd.read_csv(inbox / "labels.csv")
+    labels = read_labels(str(inbox / "labels.csv"))
     visual = labels[labels["kind"].isin(["pallet", "person"])]
     # One model thread for both: the outputs do not depend on it, and on a shared machine two threads can run
     # several times slower (the first table of this benchmark).
@@ -118,8 +117,8 @@ def demo_accuracy(work: Path, skip_threshold: float | None = None) -> None:
         mid = (w["t_start_s"] + w["t_end_s"]) / 2
         inside = np.zeros(len(w), bool)
         for r in visual.itertuples():
-            inside |= ((w["recording_id"] == r.recording).to_numpy() & (mid >= r.start_s).to_numpy()
-                       & (mid <= r.end_s).to_numpy())
+            inside |= ((w["recording_id"] == r.recording_id).to_numpy() & (mid >= r.t_start_s).to_numpy()
+                       & (mid <= r.t_end_s).to_numpy())
         res[name] = {"auc": ev["auc"], "visual": w[inside].set_index(["recording_id", "window_index"])["score"],
                      "seconds": time.perf_counter() - t0, "frames": out["embed_frames"]}
     (ref_name, ref), (new_name, new) = res.items()

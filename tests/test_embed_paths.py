@@ -14,6 +14,7 @@ from fleetsift.errors import InputError
 from fleetsift.featurizers import embed as E
 from fleetsift.featurizers import video, weights
 from fleetsift.profile import VideoStream, parse_profile
+from fleetsift.scoring.evaluation import read_labels
 
 skimage_data = pytest.importorskip("skimage.data")
 from torchvision.models import ResNet18_Weights  # noqa: E402  (ImageNet class names, offline)
@@ -298,8 +299,8 @@ def test_demo_night_auc_and_visual_scores_match_plain_float32(tmp_path):
     inbox = tmp_path / "inbox"
     for n in names:
         shutil.copytree(ROOT / "sample_raw" / n, inbox / n)
-    labels = pd.read_csv(ROOT / "sample_raw" / "labels.csv")
-    labels = labels[labels["recording"].isin(names)]
+    labels = read_labels(str(ROOT / "sample_raw" / "labels.csv"))
+    labels = labels[labels["recording_id"].isin(names)]
     labels.to_csv(inbox / "labels.csv", index=False)
     text = (ROOT / "sample_raw" / "profile.toml").read_text().replace("threads = 2", "threads = 1")  # see bench
     plain_text = text.replace('runtime = "onnxruntime"', 'runtime = "torch"').replace(
@@ -324,8 +325,8 @@ def test_demo_night_auc_and_visual_scores_match_plain_float32(tmp_path):
     mid = (wp["t_start_s"] + wp["t_end_s"]) / 2
     visual = np.zeros(len(wp), bool)
     for r in labels[labels["kind"].isin(["pallet", "person"])].itertuples():
-        visual |= (wp.index.get_level_values(0) == r.recording) & (mid >= r.start_s).to_numpy() \
-            & (mid <= r.end_s).to_numpy()
+        visual |= (wp.index.get_level_values(0) == r.recording_id) & (mid >= r.t_start_s).to_numpy() \
+            & (mid <= r.t_end_s).to_numpy()
     a, b = wp["score"][visual], wd["score"].reindex(wp.index[visual])
     # 2 % of the score, and of one robust standard deviation where the score (a robust z) is smaller than that:
     # a window scoring 0.2 is normal, and 2 % of it is below what any change of the embedding path resolves.
