@@ -470,9 +470,11 @@ def _sub(sub, name: str, **kw) -> argparse.ArgumentParser:
 def _common(ps, *, inbox=False, store=None, profile=False, wait=False, json_=False) -> None:
     """Options that several commands share, with one wording each."""
     if inbox:
-        ps.add_argument("--inbox", required=True, metavar="DIR", help="inbox folder, one sub-folder per recording")
+        ps.add_argument("--inbox", required=True, metavar="DIR",
+                        help="inbox folder or s3://bucket/prefix URL, one sub-folder per recording")
     if store == "required":
-        ps.add_argument("--store", required=True, metavar="DIR", help="results store folder (Delta Lake tables)")
+        ps.add_argument("--store", required=True, metavar="DIR",
+                        help="results store folder or s3://bucket/prefix URL (Delta Lake tables)")
     if profile:
         ps.add_argument("--profile", metavar="FILE",
                         help="sensor profile TOML (default: INBOX/profile.toml)")
