@@ -30,8 +30,11 @@ pytestmark = [pytest.mark.slow, pytest.mark.timeout(2400)]
 #   after_append TABLE  -> killed right after the append to TABLE committed
 #   mid_commit TABLE    -> frozen (SIGSTOP, all threads at once) as soon as a new data file appears in TABLE; the
 #                          test then reads the frozen state (was the log entry written yet?) and sends SIGKILL
+#   hold TABLE          -> waits HOLD_S seconds (lock held) before appending to TABLE: a second run surely meets the lock
+HOLD_S = 30.0
 HARNESS = r"""
 import os, signal, sys, threading, time
+HOLD_S = %r
 from pathlib import Path
 mode, table, store = sys.argv[1], sys.argv[2], Path(sys.argv[3])
 from fleetsift import store as store_mod
@@ -42,6 +45,13 @@ if mode == "after_append":
         if name == table:
             os.kill(os.getpid(), signal.SIGKILL)
         return v
+    store_mod.Store.append = append
+elif mode == "hold":
+    orig = store_mod.Store.append
+    def append(self, name, df):
+        if name == table:
+            time.sleep(HOLD_S)
+        return orig(self, name, df)
     store_mod.Store.append = append
 elif mode == "mid_commit":
     tdir = store / table
@@ -54,7 +64,7 @@ elif mode == "mid_commit":
     threading.Thread(target=watch, daemon=True).start()
 from fleetsift.flows.cli import main
 sys.exit(main(sys.argv[4:]))
-"""
+""" % HOLD_S
 
 
 def _env() -> dict:
@@ -325,7 +335,8 @@ def test_score_cache_without_its_meta_file_is_recomputed_not_fatal(complete_stor
 def test_two_concurrent_runs_one_refuses_neither_corrupts(complete_store, inbox, tmp_path):
     store = copy_store(complete_store, tmp_path / "store")
     n_runs = len(assert_store_consistent(store)["runs"])
-    a = _popen(run_args(inbox, store))
+    # The first run holds the lock HOLD_S seconds before writing (a warm night is otherwise over in a second or two).
+    a = _popen(run_args(inbox, store), harness=("hold", "windows", store))
     try:
         _wait_for(lambda: f"pid {a.pid} " in _lock_text(store), 300,
                   "the first run to take the store lock", proc=a)
