@@ -91,12 +91,21 @@ def delta_options(protocol: str, storage: Storage) -> dict[str, str]:
     return opts
 
 
+# The environment variables a client reads when it is made: a process whose environment points elsewhere later
+# (another endpoint, other credentials) gets a new client, not one bound to the old server.
+_CLIENT_ENV = ("AWS_ENDPOINT_URL", "AWS_ENDPOINT_URL_S3", "AWS_REGION", "AWS_DEFAULT_REGION", "AWS_PROFILE",
+               "AWS_ACCESS_KEY_ID")
+
+
 def _filesystem(protocol: str, storage: Storage):
-    key = (protocol, storage)
+    import os
+
+    key = (protocol, storage, tuple(os.environ.get(k) for k in _CLIENT_ENV))
     if key not in _FILESYSTEMS:
         import fsspec
 
-        _FILESYSTEMS[key] = fsspec.filesystem(protocol, **fsspec_options(protocol, storage))
+        # fsspec's own instance cache keys on the arguments only: it would hand back a client of the old environment.
+        _FILESYSTEMS[key] = fsspec.filesystem(protocol, skip_instance_cache=True, **fsspec_options(protocol, storage))
     return _FILESYSTEMS[key]
 
 
