@@ -116,10 +116,13 @@ def do_run(inbox: str, store: str, profile: str | None, runner: str, dask_addres
     from fleetsift.flows import night
 
     storage = storage_settings(inbox, profile)
-    # A missing inbox or a profile that does not parse is reported before any store folder is made.
-    night.fleet_profile(night.discover_inbox(inbox, storage), profile)
+    # A missing inbox, a profile that does not parse or a misspelt --rebuild name is reported before any store
+    # folder is made or read.
+    fleet = night.fleet_profile(night.discover_inbox(inbox, storage), profile)
+    if rebuild:
+        night.rebuild_plan(fleet, tuple(rebuild))
     env.configure(store)
-    from fleetsift.location import location, resolved
+    from fleetsift.location import resolved
     from fleetsift.store import Store
 
     inbox = str(resolved(inbox, storage))
@@ -130,8 +133,6 @@ def do_run(inbox: str, store: str, profile: str | None, runner: str, dask_addres
         if any(removed.values()):
             print(f"removed rows of unfinished runs: {removed}", file=sys.stderr)
 
-        if rebuild:  # a misspelt name is refused before anything starts
-            night.rebuild_plan(night.fleet_profile(location(inbox), profile), tuple(rebuild))
         result = None
         if orchestrate == "auto" and runner == "local" and not rebuild:
             try:
@@ -185,13 +186,18 @@ def _prefect_run(st, inbox: str, profile: str | None, runner: str, dask_address:
                                "dashboard_address": None}}
         fl = nightly_flow.with_options(task_runner=DaskTaskRunner(**kwargs))
         parallel = True
-    if runner == "local":
-        _warm_backbones(st, inbox, profile)
-    return fl(inbox=inbox, store=str(st.root), profile_path=profile, parallel=parallel,
-              progress=progress, rebuild=list(rebuild))
+    warming = _warm_backbones(st, inbox, profile) if runner == "local" else None
+    try:
+        return fl(inbox=inbox, store=str(st.root), profile_path=profile, parallel=parallel,
+                  progress=progress, rebuild=list(rebuild))
+    finally:
+        # A flow that fails early (a bad --rebuild name) must not exit while the thread is inside torch's or ONNX
+        # Runtime's native code: the process would abort ("terminate called without an active exception").
+        if warming is not None:
+            warming.join()
 
 
-def _warm_backbones(st, inbox: str, profile: str | None) -> None:
+def _warm_backbones(st, inbox: str, profile: str | None):
     """Load the fleet's backbones (torch import, weights, ONNX export on a new store, ONNX Runtime session) in a
     thread while the flow starts Prefect's temporary server (measured ~8-12 s here), instead of after it: the
     embed tasks of this process then find them loaded (stages._backbone). Any failure is left to the task,
@@ -212,7 +218,9 @@ def _warm_backbones(st, inbox: str, profile: str | None) -> None:
         except Exception:  # noqa: BLE001 - the embed task meets the same error and reports it
             pass
 
-    threading.Thread(target=load, name="fleetsift-warm-backbones", daemon=True).start()
+    thread = threading.Thread(target=load, name="fleetsift-warm-backbones", daemon=True)
+    thread.start()
+    return thread
 
 
 def _guarded(fn):
