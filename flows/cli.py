@@ -191,8 +191,8 @@ def _prefect_run(st, inbox: str, profile: str | None, runner: str, dask_address:
         return fl(inbox=inbox, store=str(st.root), profile_path=profile, parallel=parallel,
                   progress=progress, rebuild=list(rebuild))
     finally:
-        # A flow that fails early (a bad --rebuild name) must not exit while the thread is inside torch's or ONNX
-        # Runtime's native code: the process would abort ("terminate called without an active exception").
+        # A flow that fails early must not let the process exit while the thread is inside torch's or ONNX
+        # Runtime's native code, which can abort it ("terminate called without an active exception").
         if warming is not None:
             warming.join()
 
