@@ -21,7 +21,8 @@ METRICS = ("riemann", "logeuclid", "euclid")
 # What the SPD geometry computes: the scored metrics plus two more for comparison.
 SPD_METRICS = METRICS + ("logdet", "wasserstein")
 # knn: k-th nearest neighbour distance; density: local outlier factor; frechet_mean: distance to the Fréchet mean.
-SCORING_METHODS = ("knn", "density", "frechet_mean")
+KNN, DENSITY, FRECHET_MEAN = "knn", "density", "frechet_mean"
+SCORING_METHODS = (KNN, DENSITY, FRECHET_MEAN)
 # How the k nearest reference distances make a score: the k-th one, or their mean.
 KNN_STATS = ("kth", "mean")
 # Neighbours counted in recordings (the nearest window of each of the k nearest recordings) or in windows.

@@ -29,7 +29,7 @@ from fleetsift.scoring import geometry
 from fleetsift.scoring.index import KNNIndex
 from fleetsift.vocabulary import KNN_STATS
 from fleetsift.vocabulary import KNN_UNITS as UNITS
-from fleetsift.vocabulary import SCORING_METHODS as METHODS
+from fleetsift.vocabulary import DENSITY, FRECHET_MEAN, KNN, SCORING_METHODS as METHODS
 
 __all__ = ["MAD_SCALE", "METHODS", "UNITS", "exclusion_mask", "neighbours", "knn_scores", "mean_scores",
            "local_outlier_factors", "robust_z", "median_mad", "threshold", "riemannian_potato", "Potato", "Baseline",
@@ -282,7 +282,7 @@ class Baseline:
     c: float = Scoring.threshold_c
     median: float = float("nan")
     mad: float = float("nan")
-    method: str = "knn"
+    method: str = KNN
     unit: str = "window"
     scale: float = float("nan")
     ref_kdist: np.ndarray = field(default_factory=lambda: np.zeros(0))
@@ -309,14 +309,14 @@ def _check_windows(descriptors, rec_ids, times):
 
 def _self_scores(D, rec, t, *, k, metric, stat, exclusion_s, method, unit, index=None, mean=None):
     """Leave-one-out scores of a set of windows against the others -> (scores, mean, k-distances, lrds)."""
-    if method == METHODS[2]:
+    if method == FRECHET_MEAN:
         M = geometry.frechet_mean(D, metric) if mean is None else mean
         return mean_scores(D, M, metric), M, np.zeros(0), np.zeros(0)
     index = index if index is not None else KNNIndex(D, metric)
     ex = exclusion_mask(rec, t, rec, t, exclusion_s)
     dist, idx = neighbours(D, index, k, unit, rec, ex, _self=True)
     s = _stat(dist, k, stat, partial=unit == "recording")
-    if method == "knn":
+    if method == KNN:
         return s, mean, np.zeros(0), np.zeros(0)
     # density: the k-distance of a window is its k-th neighbour distance (the farthest one it has in recordings).
     kdist = _stat(dist, k, "kth", partial=unit == "recording")
@@ -404,12 +404,12 @@ def raw_scores(descriptors, rec_ids, times, baseline: Baseline, index: KNNIndex 
     """
     D, rec, t = _check_windows(descriptors, rec_ids, times)
     bl = baseline
-    if bl.method == METHODS[2]:
+    if bl.method == FRECHET_MEAN:
         return mean_scores(D, bl.mean, bl.metric)
     index = index if index is not None else bl.index()
     ex = exclusion_mask(rec, t, bl.ref_rec_ids, bl.ref_times, bl.exclusion_s)
     dist, idx = neighbours(D, index, bl.k, bl.unit, bl.ref_rec_ids, ex)
-    if bl.method == "density":
+    if bl.method == DENSITY:
         return local_outlier_factors(dist, idx, bl.ref_kdist, np.nan_to_num(bl.ref_lrd))
     s = _stat(dist, bl.k, bl.stat, partial=bl.unit == "recording")
     if bl.approved is not None and len(bl.approved):
@@ -508,10 +508,10 @@ class OnlineScorer:
         :func:`raw_scores`; NaN where undefined)."""
         bl = self.baseline
         X = np.asarray(descriptor, dtype=np.float64)[None]
-        if bl.method == METHODS[2]:
+        if bl.method == FRECHET_MEAN:
             return float(mean_scores(X, self.mean, bl.metric)[0])
         ex = exclusion_mask([rec_id], [t], self.rec_ids, self.times, bl.exclusion_s)
-        if bl.method == "density":
+        if bl.method == DENSITY:
             dist, idx = neighbours(X, self.index, bl.k, bl.unit, self.rec_ids, ex)
             return float(local_outlier_factors(dist, idx, self.kdist, np.nan_to_num(self.lrd))[0])
         dist, _ = neighbours(X, self.index, bl.k, bl.unit, self.rec_ids, ex)
@@ -523,7 +523,7 @@ class OnlineScorer:
 
     def update(self, descriptor, rec_id, t: float) -> None:
         """Add one window to the references and update the running mean."""
-        if self.baseline.method == "density":
+        if self.baseline.method == DENSITY:
             # A new reference changes its neighbours' densities too: refit instead (fit_references).
             raise InputError(_SRC, "method", "knn or frechet_mean for an online reference update", "density")
         X = np.asarray(descriptor, dtype=np.float64)

@@ -404,6 +404,8 @@ def score_fleet(recs: list[RecordingFeatures], *, windowing, descriptor, scoring
         tonight_ok &= np.array([(c_, t_) not in refs.approved_ids for c_, t_ in
                                 zip(w.content.tolist(), np.round(w.t_mid, 6).tolist())], bool)
 
+    known = set() if refs is None else set(zip(refs.content.tolist(), np.round(refs.t_mid, 6).tolist()))
+
     def fit(with_tonight: bool) -> dict[str, dict[str, baseline.Baseline]]:
         per_block: dict[str, dict[str, baseline.Baseline]] = {}
         for b in space.blocks:
@@ -418,7 +420,6 @@ def score_fleet(recs: list[RecordingFeatures], *, windowing, descriptor, scoring
                                                trim_fraction=scoring_cfg.trim_fraction,
                                                max_refs=baseline_cfg.max_references, **kw)
                     if refs is not None:  # a thin history, or one unlike tonight: tonight's references join
-                        known = set(zip(refs.content.tolist(), np.round(refs.t_mid, 6).tolist()))
                         new = np.array([(c_, t_) not in known for c_, t_ in
                                         zip(bl.ref_rec_ids.tolist(), np.round(bl.ref_times, 6).tolist())], bool)
                         bl = baseline.fit_references(np.concatenate([refs.descriptors[b], bl.references[new]]),
