@@ -268,6 +268,12 @@ def traces_png(series: list[tuple[str, np.ndarray, np.ndarray]], t_start: float,
     """The table channels around the window as stacked strips of one plot (each scaled to its own range, which is
     printed at the right); channels named among the drivers in the accent. One Axes instead of a panel per channel
     draws several times faster."""
+    return _png(traces_figure(series, t_start, t_end, shares, max_rows=max_rows, units=units))
+
+
+def traces_figure(series: list[tuple[str, np.ndarray, np.ndarray]], t_start: float, t_end: float,
+                  shares: dict[str, float], max_rows: int = 8, units: dict[str, str] | None = None):
+    """The figure of :func:`traces_png`."""
     import matplotlib.transforms as mtransforms
 
     plt = _mpl()
@@ -278,7 +284,7 @@ def traces_png(series: list[tuple[str, np.ndarray, np.ndarray]], t_start: float,
     fig, ax = plt.subplots(figsize=(6.0, 0.46 * n + 0.5))
     ax.axvspan(t_start, t_end, color="#f3e3c3", lw=0)
     right = mtransforms.blended_transform_factory(ax.transAxes, ax.transData)
-    labels, colours = [], []
+    labels, colours, ranges = [], [], []
     for i, (name, t, v) in enumerate(ranked):
         y0 = n - 1 - i
         hot = name in shares
@@ -287,7 +293,8 @@ def traces_png(series: list[tuple[str, np.ndarray, np.ndarray]], t_start: float,
         span = hi - lo if hi > lo else 1.0
         ax.plot(t, y0 - 0.4 + 0.8 * (v - lo) / span, lw=0.7, color=ACCENT if hot else INK)
         unit = f" {(units or {}).get(name, '')}".rstrip()
-        ax.text(1.005, y0, f"{lo:.3g} .. {hi:.3g}{unit}", transform=right, fontsize=6, va="center", color="#526170")
+        ranges.append(ax.text(1.005, y0, f"{lo:.3g} .. {hi:.3g}{unit}", transform=right, fontsize=6, va="center",
+                              color="#526170"))
         labels.append(f"{name} {shares[name]:.0%}" if hot else name)
         colours.append(ACCENT if hot else "#333")
     ax.set_yticks(np.arange(n)[::-1], labels, fontsize=7)
@@ -301,8 +308,14 @@ def traces_png(series: list[tuple[str, np.ndarray, np.ndarray]], t_start: float,
     ax.set_xlabel("seconds from the recording's first sample (window shaded; each strip scaled to the range at "
                   "its right)", fontsize=7)
     h = fig.get_figheight()
-    fig.subplots_adjust(left=0.2, right=0.86, top=1 - 0.08 / h, bottom=0.42 / h)
-    return _png(fig)
+    # Room at the right for the widest range label, units included (a unit of any length stays inside the image).
+    fig.set_dpi(PLOT_DPI)  # text widths do not scale exactly with resolution: measure at the one saved
+    renderer = fig.canvas.get_renderer()
+    widest = max((r.get_window_extent(renderer).width for r in ranges), default=0.0) / (fig.dpi * fig.get_figwidth())
+    left = 0.2  # the label starts at left + 1.005 x the axes' width, in figure fractions
+    fig.subplots_adjust(left=left, right=min(0.9, left + (0.98 - widest - left) / 1.005), top=1 - 0.08 / h,
+                        bottom=0.42 / h)
+    return fig
 
 
 # ------------------------------------------------------------------------------------------------ report

@@ -410,3 +410,27 @@ def test_report_prints_settings_threshold_units_and_iso_times(tmp_path):
         load_profile(tmp_path / "inbox" / "profile.toml").section("streams.imu")
     assert score_axis_label("riemann", load_profile(prof).scoring) == \
         "robust z of the riemann distance, mean of k nearest (k = 4)"
+
+
+@pytest.mark.parametrize("unit", ["m/s^2", "rad/s", "degrees Celsius per second"])
+def test_trace_range_labels_stay_inside_the_image(unit):
+    """Each strip's range label, unit included, is drawn inside the figure (a fixed right margin cut "m/s^2" to
+    "m/s^"), at the resolution the report saves at."""
+    from fleetsift.flows.report import PLOT_DPI, traces_figure
+
+    t = np.linspace(0.0, 20.0, 500)
+    series = [(c, t, -1234.5 + 2000.0 * np.sin(t * (i + 1))) for i, c in enumerate(["ax", "ay", "gz"])]
+    fig = traces_figure(series, 8.0, 12.0, {"ax": 0.6}, units={c: unit for c, _, _ in series})
+    try:
+        fig.set_dpi(PLOT_DPI)
+        renderer = fig.canvas.get_renderer()
+        width = fig.get_figwidth() * fig.dpi
+        labels = [tx for tx in fig.axes[0].texts if unit in tx.get_text()]
+        assert len(labels) == 3
+        for tx in labels:
+            box = tx.get_window_extent(renderer)
+            assert 0 < box.x0 and box.x1 <= width, (tx.get_text(), box.x1, width)
+    finally:
+        import matplotlib.pyplot as plt
+
+        plt.close(fig)
