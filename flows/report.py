@@ -284,6 +284,7 @@ def traces_figure(series: list[tuple[str, np.ndarray, np.ndarray]], t_start: flo
     fig, ax = plt.subplots(figsize=(6.0, 0.46 * n + 0.5))
     ax.axvspan(t_start, t_end, color="#f3e3c3", lw=0)
     right = mtransforms.blended_transform_factory(ax.transAxes, ax.transData)
+    x_range = 1.005  # where each range label starts, in axes widths
     labels, colours, ranges = [], [], []
     for i, (name, t, v) in enumerate(ranked):
         y0 = n - 1 - i
@@ -293,7 +294,7 @@ def traces_figure(series: list[tuple[str, np.ndarray, np.ndarray]], t_start: flo
         span = hi - lo if hi > lo else 1.0
         ax.plot(t, y0 - 0.4 + 0.8 * (v - lo) / span, lw=0.7, color=ACCENT if hot else INK)
         unit = f" {(units or {}).get(name, '')}".rstrip()
-        ranges.append(ax.text(1.005, y0, f"{lo:.3g} .. {hi:.3g}{unit}", transform=right, fontsize=6, va="center",
+        ranges.append(ax.text(x_range, y0, f"{lo:.3g} .. {hi:.3g}{unit}", transform=right, fontsize=6, va="center",
                               color="#526170"))
         labels.append(f"{name} {shares[name]:.0%}" if hot else name)
         colours.append(ACCENT if hot else "#333")
@@ -312,8 +313,8 @@ def traces_figure(series: list[tuple[str, np.ndarray, np.ndarray]], t_start: flo
     fig.set_dpi(PLOT_DPI)  # text widths do not scale exactly with resolution: measure at the one saved
     renderer = fig.canvas.get_renderer()
     widest = max((r.get_window_extent(renderer).width for r in ranges), default=0.0) / (fig.dpi * fig.get_figwidth())
-    left = 0.2  # the label starts at left + 1.005 x the axes' width, in figure fractions
-    fig.subplots_adjust(left=left, right=min(0.9, left + (0.98 - widest - left) / 1.005), top=1 - 0.08 / h,
+    left = 0.2  # a label starts at left + x_range x the axes' width, in figure fractions
+    fig.subplots_adjust(left=left, right=min(0.9, left + (0.98 - widest - left) / x_range), top=1 - 0.08 / h,
                         bottom=0.42 / h)
     return fig
 
