@@ -438,6 +438,8 @@ def _references_html(st: Store, run) -> str:
                      else "joined by this run's own windows while the history is thin")
     if info.get("n_approved"):
         extra.append(f"{info['n_approved']} windows reviewed as normal")
+    for name, (n_frames, n_recs) in (info.get("novelty_frames") or {}).items():
+        extra.append(f"{_e(name)} frame novelty against {n_frames} frames of {n_recs} recordings")
     ridges = ", ".join(f"{_e(b)} {v:.3g}" for b, v in info.get("ridges", {}).items())
     return (f"<p class='meta' id='references'>References: {src}; {info['n_references']} windows of "
             f"{info['n_reference_recordings']} recordings" + ("; " + "; ".join(extra) if extra else "")

@@ -22,11 +22,12 @@ from fleetsift.profile import BaselineSpec
 from fleetsift.featurizers.pca import fit_pca
 from fleetsift.featurizers.tables import cut_windows, place_on_clock, window_starts
 from fleetsift.scoring import baseline
+from fleetsift.scoring import novelty as nov
 from fleetsift.scoring.history import Bank, References, Reviews, assemble, guard_band, verdicts_for
 from fleetsift.vocabulary import METRICS
 
 # Bump when what a bank's descriptors mean changes, so no later night compares with banks of the old meaning.
-SPACE_VERSION = 1
+SPACE_VERSION = 2  # 2: the space keeps each video stream's reference frames (frame novelty)
 # More than this share of tonight's windows flagged against the history alone: the history is not tonight's
 # operation (common practice: a fault concerns a minority of windows).
 UNLIKE_HISTORY_MAX = 0.5
@@ -61,6 +62,7 @@ class Space:
     pca: dict[str, dict[str, np.ndarray]]  # per video stream
     blocks: dict[str, list[int]]  # descriptor block (stream) -> channel positions
     ridges: dict[str, float]  # block -> noise floor added to its window covariances
+    novelty: dict[str, nov.FrameBank] = field(default_factory=dict)  # per video stream: reference frames
 
     def to_arrays(self) -> dict[str, np.ndarray]:
         out = {"space.key": np.array(self.key), "space.channels": np.array(self.channels),
@@ -72,6 +74,8 @@ class Space:
         for name, p in self.pca.items():
             for k, v in p.items():
                 out[f"space.pca.{name}.{k}"] = v
+        for name, fb in self.novelty.items():
+            out.update(fb.to_arrays(f"space.novelty.{name}"))
         return out
 
     @classmethod
@@ -82,10 +86,12 @@ class Space:
             if k.startswith("space.pca."):
                 name, part = k[len("space.pca."):].rsplit(".", 1)
                 pca.setdefault(name, {})[part] = v
+        banks = {k[len("space.novelty."):-len(".robust")]: nov.FrameBank.from_arrays(
+            a, k[:-len(".robust")]) for k in a if k.startswith("space.novelty.") and k.endswith(".robust")}
         return cls(key=str(a["space.key"]), channels=[str(c) for c in a["space.channels"]],
                    center=a["space.center"], scale=a["space.scale"], pca=pca,
                    blocks={b: a[f"space.block.{b}"].astype(int).tolist() for b in blocks},
-                   ridges={b: float(r) for b, r in zip(blocks, a["space.ridges"])})
+                   ridges={b: float(r) for b, r in zip(blocks, a["space.ridges"])}, novelty=banks)
 
 
 @dataclass
@@ -104,13 +110,16 @@ class BaselineInfo:
     # share of tonight's windows over the threshold against the history alone (nan when tonight was a reference
     # from the start)
     unlike_history: float = float("nan")
+    # per video stream: how many reference frames its frame novelty is measured against, from how many recordings
+    novelty_frames: dict[str, list[int]] = field(default_factory=dict)
 
     def to_dict(self) -> dict:
         return {"source": self.source, "n_references": self.n_references,
                 "n_reference_recordings": self.n_reference_recordings, "reference_runs": self.reference_runs,
                 "tonight": self.tonight, "n_approved": self.n_approved, "space_fitted": self.space_fitted,
                 "ridges": self.ridges, "k": self.k,
-                "unlike_history": None if np.isnan(self.unlike_history) else self.unlike_history}
+                "unlike_history": None if np.isnan(self.unlike_history) else self.unlike_history,
+                "novelty_frames": self.novelty_frames}
 
 
 @dataclass
@@ -309,7 +318,54 @@ def fit_space(recs, base_ids, *, windowing, descriptor, scoring_cfg, pca_dims, v
             center, scale = fit_standardiser(samples, [np.ones(len(x), bool) for x in samples])
             z = np.concatenate([(x - center) / scale for x in samples])
             ridges = {b: _ridge(descriptor, z[:, ix]) for b, ix in blocks.items()}
-    return Space(key=key, channels=names, center=center, scale=scale, pca=pca, blocks=blocks, ridges=ridges)
+    else:
+        w, kept = None, None
+    banks = _fit_frame_banks(recs, is_base, mats, valids, w, kept, pca_dims, windowing, scoring_cfg.k)
+    return Space(key=key, channels=names, center=center, scale=scale, pca=pca, blocks=blocks, ridges=ridges,
+                 novelty=banks)
+
+
+def _fit_frame_banks(recs, is_base, mats, valids, w, kept, pca_dims, windowing, k) -> dict[str, nov.FrameBank]:
+    """Each video stream's reference frames (the baseline recordings' frames) and the robust scale of the
+    novelty of the baseline's windows (those the trimming kept, when it ran), each measured against the other
+    recordings' frames."""
+    if w is None:
+        per = [recording_windows(m, v & b, r.t, windowing.rate_hz, windowing.window_s, windowing.hop_s)
+               for r, m, v, b in zip(recs, mats, valids, is_base)]
+        keep = np.ones(sum(int(p[1].sum()) for p in per), bool)
+    else:
+        per, keep = w.per_rec, kept
+    banks: dict[str, nov.FrameBank] = {}
+    for name in pca_dims:
+        embs = [(r.identity, emb) for r, b in zip(recs, is_base) if b for (n, _, emb) in r.videos
+                if n == name and len(emb)]
+        if not embs:
+            continue
+        bank = nov.fit_frame_bank([e for _, e in embs], [o for o, _ in embs])
+        vals = _aligned(window_novelties(recs, per, bank, name, k), per)
+        bank.center, bank.scale = nov.robust_scale(vals[keep] if len(vals) == len(keep) else vals)
+        banks[name] = bank
+    return banks
+
+
+def window_novelties(recs, per_rec, bank: nov.FrameBank, name: str, k: int) -> list[np.ndarray]:
+    """Per recording, the frame novelty (scoring.novelty) of every window of video stream ``name``."""
+    out = []
+    for r, (_, _, t0, t1) in zip(recs, per_rec):
+        vid = [(t, emb) for n, t, emb in r.videos if n == name]
+        if not vid or not len(vid[0][1]):
+            out.append(np.full(len(t0), np.nan))
+            continue
+        t, emb = vid[0]
+        out.append(nov.window_novelty(t, nov.frame_novelty(bank, emb, r.identity, k), t0, t1))
+    return out
+
+
+def _aligned(per_recording: list[np.ndarray], per_rec) -> np.ndarray:
+    """Per-recording window values, in the order of the valid windows of ``_Windows`` (recordings in order,
+    their valid windows in order)."""
+    parts = [v[ok] for v, (_, ok, _, _) in zip(per_recording, per_rec) if ok.any()]
+    return np.concatenate(parts) if parts else np.empty(0)
 
 
 def _channels(recs, pca, video_gaps):
@@ -334,6 +390,10 @@ def _baseline_id(space: Space, per_block: dict[str, dict[str, baseline.Baseline]
         for k in sorted(space.pca[name]):
             h.update(np.ascontiguousarray(space.pca[name][k], np.float64).tobytes())
     h.update(repr(sorted(space.ridges.items())).encode())
+    for name in sorted(space.novelty):
+        fb = space.novelty[name]
+        h.update(np.ascontiguousarray(fb.frames).tobytes())
+        h.update(np.array([fb.center, fb.scale], np.float64).tobytes())
     h.update("\n".join(ref_ids).encode())
     for b in sorted(per_block):
         for m in sorted(per_block[b]):
@@ -341,6 +401,18 @@ def _baseline_id(space: Space, per_block: dict[str, dict[str, baseline.Baseline]
             h.update(np.ascontiguousarray(bl.references).tobytes())
             h.update(np.float64(bl.threshold).tobytes())
     return "b-" + h.hexdigest()[:12]
+
+
+def _stream_z(z: dict[str, np.ndarray], space: Space) -> dict[str, np.ndarray]:
+    """Per block, its z or its video stream's frame novelty z, whichever is larger: a window flagged for a new
+    sight names the channels of the block that holds its camera."""
+    out = {b: z[b] for b in space.blocks}
+    for name in space.novelty:
+        b = name if name in space.blocks else next(
+            (b for b, ix in space.blocks.items() if any(space.channels[i].startswith(f"{name}.") for i in ix)), None)
+        if b is not None:
+            out[b] = np.fmax(out[b], z[f"{name}.novelty"])
+    return out
 
 
 def combine_shares(shares: dict[str, np.ndarray], z: dict[str, np.ndarray], blocks: dict[str, list[int]],
@@ -388,6 +460,22 @@ def score_fleet(recs: list[RecordingFeatures], *, windowing, descriptor, scoring
     if names != space.channels:
         raise ValueError(f"channels {names} differ from the baseline's {space.channels}")
     w = _windows(recs, mats, valids, space.center, space.scale, space.blocks, space.ridges, windowing, descriptor)
+    frame_banks: dict[str, nov.FrameBank] = {}
+
+    def novelty_z(with_tonight: bool) -> dict[str, np.ndarray]:
+        """Each camera's frame novelty z, the same under every metric: against the space's reference frames,
+        joined by tonight's baseline recordings' frames when tonight's batch joins a history's references."""
+        out = {}
+        for name, bank in space.novelty.items():
+            if with_tonight and use_history:
+                embs = [(r.identity, emb) for r in recs if r.recording_id in base_ids
+                        for (n, _, emb) in r.videos if n == name]
+                bank = nov.extend_frame_bank(bank, [e for _, e in embs], [o for o, _ in embs])
+            frame_banks[name] = bank
+            vals = _aligned(window_novelties(recs, w.per_rec, bank, name, int(scoring_cfg.k)), w.per_rec)
+            out[f"{name}.novelty"] = nov.zscore(vals, bank)
+        return out
+
     tol = 0.5 * windowing.hop_s
     verdict = verdicts_for(w.content, w.t_mid, reviews, tol)
     in_base = np.isin(w.name, list(base_ids))
@@ -431,15 +519,15 @@ def score_fleet(recs: list[RecordingFeatures], *, windowing, descriptor, scoring
                 per_block[b][m] = bl
         return per_block
 
-    def scores(per_block):
-        z_by = {m: {b: baseline.zscore(baseline.raw_scores(w.D[b], w.content, w.t_mid, per_block[b][m]),
-                                       per_block[b][m]) for b in space.blocks} for m in metrics}
+    def scores(per_block, z_novelty):
+        z_by = {m: {**{b: baseline.zscore(baseline.raw_scores(w.D[b], w.content, w.t_mid, per_block[b][m]),
+                                          per_block[b][m]) for b in space.blocks}, **z_novelty} for m in metrics}
         with warnings.catch_warnings():  # a window no block can score stays NaN
             warnings.simplefilter("ignore", RuntimeWarning)
             return z_by, {m: np.nanmax(np.stack(list(z_by[m].values())), axis=0) for m in metrics}
 
     per_block = fit(tonight)
-    z_by, z = scores(per_block)
+    z_by, z = scores(per_block, novelty_z(tonight))
     c = float(scoring_cfg.threshold_c)
     unlike_history = float("nan")
     if not tonight:
@@ -450,12 +538,12 @@ def score_fleet(recs: list[RecordingFeatures], *, windowing, descriptor, scoring
         if unlike_history > UNLIKE_HISTORY_MAX:
             tonight = True
             per_block = fit(True)
-            z_by, z = scores(per_block)
+            z_by, z = scores(per_block, novelty_z(True))
     # An engineer's verdict on a window decides its flag: a reviewed false alarm is not flagged again.
     flagged = {m: np.where(verdict == "normal", False, np.where(verdict == "fault", True, z[m] > c)) for m in metrics}
     shares_b = {b: baseline.attribute(w.D[b], per_block[b][primary].mean, w.groups[b], len(ix))
                 for b, ix in space.blocks.items()}
-    shares = combine_shares(shares_b, z_by[primary], space.blocks, len(names))
+    shares = combine_shares(shares_b, _stream_z(z_by[primary], space), space.blocks, len(names))
     # Only confidently normal windows teach later nights what normal is: a fault that scored just below the
     # threshold tonight (partly masked in a first night's batch) must not become the references that hide it
     # next week; nor may the edges of a flagged event (the guard band, one window length).
@@ -475,7 +563,9 @@ def score_fleet(recs: list[RecordingFeatures], *, windowing, descriptor, scoring
                         reference_runs=refs.runs if refs is not None else [], tonight=tonight,
                         n_approved=0 if any_bl.approved is None else len(any_bl.approved),
                         space_fitted=not use_history, ridges=dict(space.ridges), k=k,
-                        unlike_history=unlike_history)
+                        unlike_history=unlike_history,
+                        novelty_frames={n: [len(fb.owner), len(set(fb.owner.tolist()))]
+                                        for n, fb in frame_banks.items()})
     ref_ids = [] if refs is None else [f"{c_}:{t_:.6f}" for c_, t_ in zip(refs.content, refs.t_mid)]
     fb = FleetBaseline(baseline_id=_baseline_id(space, per_block, ref_ids), space=space, per_block=per_block,
                        info=info, reference_recordings=ref_recs)

@@ -306,6 +306,8 @@ def space_key(profile: Profile) -> str:
     section = {k: profile.section(k) for k in ("windowing", "descriptor")}
     section["streams"] = {n: profile.section(f"streams.{n}") for n in sorted(profile.streams)}
     section["trim_fraction"] = profile.scoring.trim_fraction  # the space is fitted on the robustly kept windows
+    if profile.video_streams():  # the space keeps the scale of its cameras' frame novelty, measured with k
+        section["k"] = profile.scoring.k
     version = "/".join([stage_version("tables"), stage_version("embed"),
                         code_version("fleetsift.featurizers.descriptors"), str(fleet.SPACE_VERSION)])
     return stage_key("space", "", section, version)
