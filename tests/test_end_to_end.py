@@ -95,9 +95,11 @@ def test_planted_anomalies_score_above_normal_windows(cold):
         y = label_windows(wm, labels)
         aucs[m] = roc_auc_score(y, wm["score"])
     # Measured on the committed demo fleet (defaults: neighbours in recordings, k 3, per-stream descriptors, ridge
-    # "auto", pca_dim 6): riemann 0.940, logeuclid 0.949, euclid 0.939 (before issue 11: 0.911, 0.923, 0.876).
-    assert aucs["riemann"] >= 0.93, aucs
-    assert min(aucs.values()) >= 0.85, aucs
+    # "auto", pca_dim 6, the camera's frame novelty): riemann 0.961, logeuclid 0.959, euclid 0.954 (without the
+    # frame novelty 0.940, 0.950, 0.940; before issue 11: 0.911, 0.923, 0.876).
+    assert aucs["riemann"] >= 0.95, aucs
+    assert aucs["riemann"] > aucs["euclid"], aucs
+    assert min(aucs.values()) >= 0.9, aucs
 
 
 def test_warm_rerun_computes_nothing_and_imu_change_keeps_embeddings(cold):
