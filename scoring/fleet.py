@@ -155,6 +155,8 @@ class FleetResult:
     channels: list[str]
     bank: Bank
     groups: dict[str, np.ndarray] = field(default_factory=dict)  # block -> channel of each descriptor dimension
+    # the space later nights take from tonight's bank: its reference frames joined by tonight's admitted frames
+    history_space: Space | None = None
 
 
 def video_gap_s(sample_hz: float, max_gap_s: float) -> float:
@@ -337,11 +339,11 @@ def _fit_frame_banks(recs, is_base, mats, valids, w, kept, pca_dims, windowing, 
         per, keep = w.per_rec, kept
     banks: dict[str, nov.FrameBank] = {}
     for name in pca_dims:
-        embs = [(r.identity, emb) for r, b in zip(recs, is_base) if b for (n, _, emb) in r.videos
+        embs = [(r.identity, t, emb) for r, b in zip(recs, is_base) if b for (n, t, emb) in r.videos
                 if n == name and len(emb)]
         if not embs:
             continue
-        bank = nov.fit_frame_bank([e for _, e in embs], [o for o, _ in embs])
+        bank = nov.fit_frame_bank([e for _, _, e in embs], [o for o, _, _ in embs], [t for _, t, _ in embs])
         vals = _aligned(window_novelties(recs, per, bank, name, k), per)
         bank.center, bank.scale = nov.robust_scale(vals[keep] if len(vals) == len(keep) else vals)
         banks[name] = bank
@@ -382,7 +384,8 @@ def _channels(recs, pca, video_gaps):
     return mats, valids, names
 
 
-def _baseline_id(space: Space, per_block: dict[str, dict[str, baseline.Baseline]], ref_ids: list[str]) -> str:
+def _baseline_id(space: Space, per_block: dict[str, dict[str, baseline.Baseline]], ref_ids: list[str],
+                 frame_banks: dict[str, nov.FrameBank]) -> str:
     h = hashlib.sha256(space.key.encode())
     for a in (space.center, space.scale):
         h.update(np.ascontiguousarray(a, np.float64).tobytes())
@@ -390,8 +393,8 @@ def _baseline_id(space: Space, per_block: dict[str, dict[str, baseline.Baseline]
         for k in sorted(space.pca[name]):
             h.update(np.ascontiguousarray(space.pca[name][k], np.float64).tobytes())
     h.update(repr(sorted(space.ridges.items())).encode())
-    for name in sorted(space.novelty):
-        fb = space.novelty[name]
+    for name in sorted(frame_banks):
+        fb = frame_banks[name]
         h.update(np.ascontiguousarray(fb.frames).tobytes())
         h.update(np.array([fb.center, fb.scale], np.float64).tobytes())
     h.update("\n".join(ref_ids).encode())
@@ -401,6 +404,34 @@ def _baseline_id(space: Space, per_block: dict[str, dict[str, baseline.Baseline]
             h.update(np.ascontiguousarray(bl.references).tobytes())
             h.update(np.float64(bl.threshold).tobytes())
     return "b-" + h.hexdigest()[:12]
+
+
+def _space_for_history(space: Space, use_history: bool, recs, w: _Windows, admitted: np.ndarray) -> Space:
+    """The space kept with tonight's bank: its reference frames are the earlier nights' (a history night), then
+    tonight's frames, newest last, each marked admitted when it lies in a window later nights may take as a
+    reference (``admitted``) -- so the frame novelty follows the history as the descriptors' references do, and a
+    flagged window's frames count only once it is reviewed as normal (verdicts apply where the frames are used,
+    as a review may come on any later day)."""
+    if not space.novelty:
+        return space
+    banks = {}
+    for name, ref in space.novelty.items():
+        base = ref if use_history else ref.select(np.zeros(len(ref.owner), bool))
+        vids, owners, times, adms = [], [], [], []
+        for i, r in enumerate(recs):
+            _, ok, t0, t1 = w.per_rec[i]
+            adm = admitted[w.owner == i]
+            for n, t, emb in r.videos:
+                if n != name or not len(emb):
+                    continue
+                a0, a1 = t0[ok][adm], t1[ok][adm]
+                vids.append(emb)
+                owners.append(r.identity)
+                times.append(t)
+                adms.append(((t[:, None] >= a0[None, :]) & (t[:, None] < a1[None, :])).any(axis=1))
+        banks[name] = nov.extend_frame_bank(base, vids, owners, times, adms)
+    return Space(key=space.key, channels=space.channels, center=space.center, scale=space.scale, pca=space.pca,
+                 blocks=space.blocks, ridges=space.ridges, novelty=banks)
 
 
 def _stream_z(z: dict[str, np.ndarray], space: Space) -> dict[str, np.ndarray]:
@@ -463,14 +494,17 @@ def score_fleet(recs: list[RecordingFeatures], *, windowing, descriptor, scoring
     frame_banks: dict[str, nov.FrameBank] = {}
 
     def novelty_z(with_tonight: bool) -> dict[str, np.ndarray]:
-        """Each camera's frame novelty z, the same under every metric: against the space's reference frames,
-        joined by tonight's baseline recordings' frames when tonight's batch joins a history's references."""
+        """Each camera's frame novelty z, the same under every metric: against the space's reference frames
+        (the admitted ones and those of windows reviewed as normal, never a reviewed fault's), joined by
+        tonight's baseline recordings' frames when tonight's batch joins a history's references."""
         out = {}
         for name, bank in space.novelty.items():
+            bank = bank.references(verdicts_for(bank.owner, bank.t, reviews, 0.5 * windowing.window_s))
             if with_tonight and use_history:
-                embs = [(r.identity, emb) for r in recs if r.recording_id in base_ids
-                        for (n, _, emb) in r.videos if n == name]
-                bank = nov.extend_frame_bank(bank, [e for _, e in embs], [o for o, _ in embs])
+                vids = [(r.identity, t, emb) for r in recs if r.recording_id in base_ids
+                        for (n, t, emb) in r.videos if n == name]
+                bank = nov.extend_frame_bank(bank, [e for _, _, e in vids], [o for o, _, _ in vids],
+                                             [t for _, t, _ in vids])
             frame_banks[name] = bank
             vals = _aligned(window_novelties(recs, w.per_rec, bank, name, int(scoring_cfg.k)), w.per_rec)
             out[f"{name}.novelty"] = nov.zscore(vals, bank)
@@ -552,6 +586,7 @@ def score_fleet(recs: list[RecordingFeatures], *, windowing, descriptor, scoring
     admitted = np.where(verdict == "normal", True, np.where(verdict == "fault", False, admitted))
     bank = Bank(content=w.content, recording_id=w.name, window_index=w.index, t_mid=w.t_mid, admitted=admitted,
                 descriptors=w.D)
+    history_space = _space_for_history(space, use_history, recs, w, admitted)
 
     if tonight:
         ref_recs = sorted(set(w.name[in_base]))
@@ -567,8 +602,8 @@ def score_fleet(recs: list[RecordingFeatures], *, windowing, descriptor, scoring
                         novelty_frames={n: [len(fb.owner), len(set(fb.owner.tolist()))]
                                         for n, fb in frame_banks.items()})
     ref_ids = [] if refs is None else [f"{c_}:{t_:.6f}" for c_, t_ in zip(refs.content, refs.t_mid)]
-    fb = FleetBaseline(baseline_id=_baseline_id(space, per_block, ref_ids), space=space, per_block=per_block,
-                       info=info, reference_recordings=ref_recs)
+    fb = FleetBaseline(baseline_id=_baseline_id(space, per_block, ref_ids, frame_banks), space=space,
+                       per_block=per_block, info=info, reference_recordings=ref_recs)
 
     out: list[WindowScores] = []
     for i, (r, (wins, ok, t0, t1)) in enumerate(zip(recs, w.per_rec)):
@@ -595,4 +630,5 @@ def score_fleet(recs: list[RecordingFeatures], *, windowing, descriptor, scoring
             tops.append(",".join(f"{names[c_]}:{sh[j, c_]:.3f}" for c_ in order))
         out.append(WindowScores(recording_id=r.recording_id, t_start=t0, t_end=t1, valid=ok, scores=sc, flagged=fl,
                                 top_channels=tops, shares=sh, verdict=vd.astype(str)))
-    return FleetResult(baseline=fb, windows=out, channels=names, bank=bank, groups=w.groups)
+    return FleetResult(baseline=fb, windows=out, channels=names, bank=bank, groups=w.groups,
+                       history_space=history_space)

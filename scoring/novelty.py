@@ -32,19 +32,35 @@ class FrameBank:
     basis: np.ndarray  # (D, d) principal directions of the centred unit embeddings
     frames: np.ndarray  # (B, D) float16 projected unit embeddings of the reference frames
     owner: np.ndarray  # (B,) identity (content hash) of each reference frame's recording
+    t: np.ndarray  # (B,) each reference frame's time, seconds on its recording's common clock
+    # (B,) whether the frame may be a reference: false for frames of a flagged window, kept so that a later
+    # review of that window as normal can still bring them in
+    admitted: np.ndarray
     center: float = 0.0  # median of the reference windows' novelty
     scale: float = 1.0  # 1.4826 x MAD of the reference windows' novelty
 
     def to_arrays(self, prefix: str) -> dict[str, np.ndarray]:
         return {f"{prefix}.mean": self.mean, f"{prefix}.basis": self.basis, f"{prefix}.frames": self.frames,
-                f"{prefix}.owner": self.owner.astype(str),
+                f"{prefix}.owner": self.owner.astype(str), f"{prefix}.t": self.t.astype(np.float64),
+                f"{prefix}.admitted": self.admitted.astype(bool),
                 f"{prefix}.robust": np.array([self.center, self.scale], np.float64)}
 
     @classmethod
     def from_arrays(cls, a: dict[str, np.ndarray], prefix: str) -> "FrameBank":
         c, s = (float(x) for x in a[f"{prefix}.robust"])
         return cls(mean=a[f"{prefix}.mean"], basis=a[f"{prefix}.basis"], frames=a[f"{prefix}.frames"],
-                   owner=a[f"{prefix}.owner"].astype(str), center=c, scale=s)
+                   owner=a[f"{prefix}.owner"].astype(str), t=a[f"{prefix}.t"].astype(np.float64),
+                   admitted=a[f"{prefix}.admitted"].astype(bool), center=c, scale=s)
+
+    def select(self, keep: np.ndarray) -> "FrameBank":
+        return FrameBank(mean=self.mean, basis=self.basis, frames=self.frames[keep], owner=self.owner[keep],
+                         t=self.t[keep], admitted=self.admitted[keep], center=self.center, scale=self.scale)
+
+    def references(self, verdicts: np.ndarray) -> "FrameBank":
+        """The frames that count as references given each frame's review verdict ("" where none): the admitted
+        ones and those reviewed as normal, never one reviewed as a fault."""
+        v = np.asarray(verdicts).astype(str)
+        return self.select((self.admitted | (v == "normal")) & (v != "fault"))
 
 
 def _unit(emb: np.ndarray, mean: np.ndarray) -> np.ndarray:
@@ -52,13 +68,15 @@ def _unit(emb: np.ndarray, mean: np.ndarray) -> np.ndarray:
     return x / np.maximum(np.linalg.norm(x, axis=1, keepdims=True), 1e-12)
 
 
-def fit_frame_bank(embeddings: list[np.ndarray], owners: list[str], dim: int = FRAME_DIM,
-                   max_frames: int = MAX_FRAMES) -> FrameBank:
+def fit_frame_bank(embeddings: list[np.ndarray], owners: list[str], times: list[np.ndarray] | None = None,
+                   dim: int = FRAME_DIM, max_frames: int = MAX_FRAMES) -> FrameBank:
     """Reference frames from the baseline recordings' embeddings (one array per recording, its identity beside):
     at most ``max_frames``, evenly subsampled, and the principal directions fitted on those (the covariance of
     the unit vectors, eigendecomposed: cheap for any number of frames, as the embedding size bounds it)."""
     allf = np.concatenate([np.asarray(e) for e in embeddings])
     owner = np.concatenate([np.full(len(e), o, dtype=object) for e, o in zip(embeddings, owners)]).astype(str)
+    t = np.concatenate([np.asarray(x, np.float64) for x in times] if times is not None
+                       else [np.arange(len(e), dtype=np.float64) for e in embeddings])
     mean = allf.mean(axis=0, dtype=np.float64)
     keep = np.unique(np.linspace(0, len(allf) - 1, min(len(allf), max_frames)).round().astype(int))
     u = _unit(allf[keep], mean)
@@ -66,7 +84,8 @@ def fit_frame_bank(embeddings: list[np.ndarray], owners: list[str], dim: int = F
     n_dir = max(1, min(int(dim), len(u) - 1, u.shape[1]))
     _, vecs = np.linalg.eigh(uc.T @ uc)  # ascending eigenvalues
     basis = np.ascontiguousarray(vecs[:, ::-1][:, :n_dir].T)
-    return FrameBank(mean=mean, basis=basis, frames=(u @ basis.T).astype(np.float16), owner=owner[keep])
+    return FrameBank(mean=mean, basis=basis, frames=(u @ basis.T).astype(np.float16), owner=owner[keep], t=t[keep],
+                     admitted=np.ones(len(keep), bool))
 
 
 def frame_novelty(bank: FrameBank, emb: np.ndarray, identity: str, k: int) -> np.ndarray:
@@ -125,19 +144,21 @@ def zscore(values: np.ndarray, bank: FrameBank) -> np.ndarray:
 
 
 def extend_frame_bank(bank: FrameBank, embeddings: list[np.ndarray], owners: list[str],
+                      times: list[np.ndarray], admitted: list[np.ndarray] | None = None,
                       max_frames: int = MAX_FRAMES) -> FrameBank:
-    """The bank joined by more recordings' frames (tonight's, when tonight's batch joins the references),
-    projected in the bank's own basis; recordings already in the bank are not added twice. The robust scale stays
-    the bank's. When the joined bank holds more than ``max_frames``, every recording keeps an even share."""
-    have = set(bank.owner.tolist())
-    new = [(o, e) for e, o in zip(embeddings, owners) if o not in have and len(e)]
+    """The bank joined by more recordings' frames, projected in the bank's own basis, newest last (``admitted``:
+    per recording, which of its frames may be references; all by default). A recording already in the bank is
+    replaced by its newer frames, as a recording scored again counts as its newest night saw it; the robust scale
+    stays the bank's. Over ``max_frames`` the oldest frames go, so the reference frames follow the history."""
+    adm = admitted if admitted is not None else [np.ones(len(e), bool) for e in embeddings]
+    new = [(o, e, t, a) for e, o, t, a in zip(embeddings, owners, times, adm) if len(e)]
     if not new:
         return bank
-    frames = np.concatenate([bank.frames] + [(_unit(e, bank.mean) @ bank.basis.T).astype(np.float16)
-                                             for _, e in new])
-    owner = np.concatenate([bank.owner] + [np.full(len(e), o, dtype=object).astype(str) for o, e in new])
-    if len(frames) > max_frames:
-        keep = np.unique(np.linspace(0, len(frames) - 1, max_frames).round().astype(int))
-        frames, owner = frames[keep], owner[keep]
-    return FrameBank(mean=bank.mean, basis=bank.basis, frames=frames, owner=owner, center=bank.center,
-                     scale=bank.scale)
+    old = bank.select(~np.isin(bank.owner, [o for o, _, _, _ in new]))
+    frames = np.concatenate([old.frames] + [(_unit(e, bank.mean) @ bank.basis.T).astype(np.float16)
+                                            for _, e, _, _ in new])
+    owner = np.concatenate([old.owner] + [np.full(len(e), o, dtype=object).astype(str) for o, e, _, _ in new])
+    t = np.concatenate([old.t] + [np.asarray(t, np.float64) for _, _, t, _ in new])
+    ok = np.concatenate([old.admitted] + [np.asarray(a, bool) for _, _, _, a in new])
+    return FrameBank(mean=bank.mean, basis=bank.basis, frames=frames[-max_frames:], owner=owner[-max_frames:],
+                     t=t[-max_frames:], admitted=ok[-max_frames:], center=bank.center, scale=bank.scale)

@@ -433,7 +433,7 @@ def run_score(prepared: list[dict], profile: Profile, store_root: str, run_id: s
             }))
     df = pd.concat(rows, ignore_index=True)
     out.parent.mkdir(parents=True, exist_ok=True)
-    store.save_arrays(bank_path, **res.bank.to_arrays(), **bl.space.to_arrays(),
+    store.save_arrays(bank_path, **res.bank.to_arrays(), **(res.history_space or bl.space).to_arrays(),
                       **{f"groups.{b}": g for b, g in res.groups.items()})
     write_atomic(out, df.to_parquet(index=False))
     meta = {"baseline_id": bl.baseline_id, "channels": res.channels, "thresholds": {m: c for m in fleet.METRICS},

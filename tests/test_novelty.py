@@ -3,6 +3,8 @@ and a new sight in one recording's video that only the frame novelty finds."""
 
 from __future__ import annotations
 
+import dataclasses
+
 import numpy as np
 import pytest
 from scipy.spatial.distance import cdist
@@ -123,18 +125,56 @@ def test_a_sight_that_k_recordings_show_is_normal():
     assert at.max() < Scoring().threshold_c, at
 
 
-def test_tonights_frames_join_a_bank_once_in_its_own_basis():
+def test_tonights_frames_join_a_bank_once_in_its_own_basis_and_the_oldest_go_first():
     rng = np.random.default_rng(4)
     embs, owners, bank = _bank(rng, n_rec=3)
     bank.center, bank.scale = 0.3, 0.1
     new = rng.normal(size=(10, 8)) + 3.0
-    ext = nov.extend_frame_bank(bank, [new, embs[0]], ["tonight", "r0"])  # r0 is in the bank already
-    assert len(ext.frames) == len(bank.frames) + 10 and (ext.center, ext.scale) == (0.3, 0.1)
-    assert list(ext.owner).count("tonight") == 10 and list(ext.owner).count("r0") == 40
+    ext = nov.extend_frame_bank(bank, [new, embs[0][:25]], ["tonight", "r0"], [np.arange(10.0), np.arange(25.0)])
+    assert len(ext.frames) == len(bank.frames) - 40 + 10 + 25 and (ext.center, ext.scale) == (0.3, 0.1)
+    # r0 was in already: scored again, its newer frames replace the older ones
+    assert list(ext.owner).count("tonight") == 10 and list(ext.owner[-25:]) == ["r0"] * 25
     # tonight's frames now count as references for the other recordings:
     np.testing.assert_allclose(nov.frame_novelty(ext, new[:3], "r1", 1), 0.0, atol=2e-3)
-    capped = nov.extend_frame_bank(bank, [new], ["tonight"], max_frames=65)
-    assert len(capped.frames) <= 65 and set(capped.owner) == {"r0", "r1", "r2", "tonight"}
+    capped = nov.extend_frame_bank(bank, [new], ["tonight"], [np.arange(10.0)], max_frames=65)
+    assert len(capped.frames) == 65 and list(capped.owner[-10:]) == ["tonight"] * 10
+    assert "r0" not in set(capped.owner) and list(capped.owner[:55]) == list(bank.owner[-55:])
+
+
+def test_later_nights_take_the_admitted_frames_and_never_a_reviewed_faults():
+    from fleetsift.scoring.history import Reviews
+
+    recs = _video_fleet(sight_in=(0,))
+    first = _score(recs)
+    kept = first.history_space.novelty["camera"]
+    assert len(kept.owner) == 6 * 200  # every frame is kept, marked whether it may be a reference
+    hist = kept.select(kept.admitted)
+    # The sight's windows were flagged, so their frames (and those within a window of them) are not references.
+    at_sight = (hist.owner == "rec-0") & (hist.t >= 20) & (hist.t < 26)
+    assert not at_sight.any() and 5 * 150 < len(hist.owner) < 6 * 200
+    assert first.baseline.space.novelty["camera"].owner.tolist().count("rec-0") == 200  # tonight: all of them
+    # A window of rec-3 reviewed as a fault after that night: its frames leave the references of the next night.
+    t_rev = float(np.median(hist.t[hist.owner == "rec-3"]))
+    rv = Reviews(content=np.array(["rec-3"]), t_mid=np.array([t_rev]), verdict=np.array(["fault"]))
+    night2 = [dataclasses.replace(r, recording_id=f"new-{i}") for i, r in enumerate(_video_fleet(sight_in=())[:2])]
+    second = fleet.score_fleet(night2, windowing=Windowing(), descriptor=Descriptor(),
+                               scoring_cfg=Scoring(exclusion_s=5.0), baseline_cfg=BaselineSpec(),
+                               pca_dims={"camera": 4}, video_gaps={"camera": 0.5}, metrics=("riemann",),
+                               parent_space=first.history_space, history=[first.bank], reviews=rv)
+    assert second.baseline.info.source == "history" and not second.baseline.info.tonight
+    faulty = ((hist.owner == "rec-3") & (np.abs(hist.t - t_rev) <= 2.0)).sum()
+    assert faulty >= 15 and second.baseline.info.novelty_frames["camera"] == [len(hist.owner) - faulty, 6]
+    # ... and the night after keeps those frames, then tonight's (the newest last).
+    nxt = second.history_space.novelty["camera"]
+    assert len(nxt.owner) == 8 * 200 and set(nxt.owner[-200:]) == {"new-1"}
+    # The sight's windows reviewed as normal: from then on their frames are references, and the sight that only
+    # rec-0 showed is no longer novel for new recordings that show it too.
+    sight = nov.frame_novelty(nxt.references(np.full(len(nxt.owner), "")), _video_fleet((0,))[0].videos[0][2][105:125],
+                              "new-9", 1)
+    ok = nov.frame_novelty(nxt.references(np.where((nxt.owner == "rec-0") & (nxt.t >= 20) & (nxt.t < 26),
+                                                   "normal", "")), _video_fleet((0,))[0].videos[0][2][105:125],
+                           "new-9", 1)
+    assert ok.max() < 0.2 * sight.min(), (ok, sight)
 
 
 def test_k_starts_a_new_history_only_where_a_camera_keeps_a_novelty_scale():
