@@ -20,7 +20,7 @@ from dataclasses import dataclass
 import numpy as np
 
 FRAME_DIM = 64  # principal directions of the unit embeddings kept per reference frame
-MAX_FRAMES = 20000  # reference frames kept per video stream, evenly subsampled over the baseline's frames
+MAX_FRAMES = 20000  # frames kept per video stream: a first night evenly subsampled, later nights the newest
 _CHUNK = 1024  # query frames per distance block (bounds memory at _CHUNK x n_reference_frames floats)
 
 
