@@ -32,9 +32,9 @@ from fleetsift.vocabulary import KNN_UNITS as UNITS
 from fleetsift.vocabulary import DENSITY, FRECHET_MEAN, KNN, SCORING_METHODS as METHODS
 
 __all__ = ["MAD_SCALE", "METHODS", "UNITS", "exclusion_mask", "neighbours", "knn_scores", "mean_scores",
-           "local_outlier_factors", "robust_z", "median_mad", "threshold", "riemannian_potato", "Potato", "Baseline",
-           "fit_baseline", "fit_references", "raw_scores", "score", "zscore", "attribute", "top_channels",
-           "OnlineScorer"]
+           "local_outlier_factors", "robust_z", "median_mad", "robust_scale", "threshold", "riemannian_potato",
+           "Potato", "Baseline", "fit_baseline", "fit_references", "raw_scores", "score", "zscore", "attribute",
+           "top_channels", "OnlineScorer"]
 
 # MAD -> standard deviation for Gaussian data: 1 / Phi^-1(3/4) (common practice).
 MAD_SCALE = 1.4826
@@ -53,7 +53,8 @@ def median_mad(x) -> tuple[float, float]:
     return med, float(np.median(np.abs(x - med)))
 
 
-def _robust_scale(x) -> tuple[float, float]:
+def robust_scale(x) -> tuple[float, float]:
+    """Median and robust sigma (1.4826 x MAD; the scaled mean absolute deviation where the MAD is 0)."""
     med, mad = median_mad(x)
     scale = MAD_SCALE * mad
     if scale == 0:
@@ -73,7 +74,7 @@ def robust_z(d, ref_d) -> np.ndarray:
     if that is 0 too, values equal to the median get 0 and others +-inf.
     """
     d = np.asarray(d, dtype=np.float64)
-    med, scale = _robust_scale(ref_d)
+    med, scale = robust_scale(ref_d)
     if scale == 0:
         return np.where(d == med, 0.0, np.where(d > med, np.inf, -np.inf))
     return (d - med) / scale
@@ -348,7 +349,7 @@ def fit_references(references, rec_ids, times, k: int = Scoring.k, metric: str =
         raise InputError(_SRC, "descriptors", f"references with at least k={k} allowed neighbours "
                          f"(exclusion zone {exclusion_s} s)", "none: lower k or the exclusion zone, or add recordings")
     med, mad = median_mad(loo)
-    _, scale = _robust_scale(loo)
+    _, scale = robust_scale(loo)
     ap = None if approved is None or len(approved) == 0 else np.asarray(approved, np.float64)
     return Baseline(references=R, ref_rec_ids=rr, ref_times=rt, mean=M, threshold=med + float(c) * scale, k=k,
                     metric=metric, stat=stat, exclusion_s=float(exclusion_s), loo_scores=loo, kept=np.ones(len(R), bool),

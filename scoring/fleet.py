@@ -334,20 +334,27 @@ def _fit_frame_banks(recs, is_base, mats, valids, w, kept, pca_dims, windowing, 
     if w is None:
         per = [recording_windows(m, v & b, r.t, windowing.rate_hz, windowing.window_s, windowing.hop_s)
                for r, m, v, b in zip(recs, mats, valids, is_base)]
-        keep = np.ones(sum(int(p[1].sum()) for p in per), bool)
+        keep = slice(None)
     else:
         per, keep = w.per_rec, kept
+    base_ids = {r.recording_id for r, b in zip(recs, is_base) if b}
     banks: dict[str, nov.FrameBank] = {}
     for name in pca_dims:
-        embs = [(r.identity, t, emb) for r, b in zip(recs, is_base) if b for (n, t, emb) in r.videos
-                if n == name and len(emb)]
+        owners, times, embs = _stream_frames(recs, name, base_ids)
         if not embs:
             continue
-        bank = nov.fit_frame_bank([e for _, _, e in embs], [o for o, _, _ in embs], [t for _, t, _ in embs])
-        vals = _aligned(window_novelties(recs, per, bank, name, k), per)
-        bank.center, bank.scale = nov.robust_scale(vals[keep] if len(vals) == len(keep) else vals)
+        bank = nov.fit_frame_bank(embs, owners, times)
+        bank.center, bank.scale = nov.robust_scale(_aligned(window_novelties(recs, per, bank, name, k), per)[keep])
         banks[name] = bank
     return banks
+
+
+def _stream_frames(recs, name: str, only=None) -> tuple[list[str], list[np.ndarray], list[np.ndarray]]:
+    """Identities, frame times and embeddings of video stream ``name`` in the recordings (those named in
+    ``only`` when given) that have frames of it."""
+    got = [(r.identity, t, emb) for r in recs if only is None or r.recording_id in only
+           for (n, t, emb) in r.videos if n == name and len(emb)]
+    return [o for o, _, _ in got], [t for _, t, _ in got], [e for _, _, e in got]
 
 
 def window_novelties(recs, per_rec, bank: nov.FrameBank, name: str, k: int) -> list[np.ndarray]:
@@ -414,22 +421,16 @@ def _space_for_history(space: Space, use_history: bool, recs, w: _Windows, admit
     as a review may come on any later day)."""
     if not space.novelty:
         return space
+    # Per recording, the spans of its admitted windows.
+    spans = {r.identity: (t0[ok][admitted[w.owner == i]], t1[ok][admitted[w.owner == i]])
+             for i, (r, (_, ok, t0, t1)) in enumerate(zip(recs, w.per_rec))}
     banks = {}
     for name, ref in space.novelty.items():
         base = ref if use_history else ref.select(np.zeros(len(ref.owner), bool))
-        vids, owners, times, adms = [], [], [], []
-        for i, r in enumerate(recs):
-            _, ok, t0, t1 = w.per_rec[i]
-            adm = admitted[w.owner == i]
-            for n, t, emb in r.videos:
-                if n != name or not len(emb):
-                    continue
-                a0, a1 = t0[ok][adm], t1[ok][adm]
-                vids.append(emb)
-                owners.append(r.identity)
-                times.append(t)
-                adms.append(((t[:, None] >= a0[None, :]) & (t[:, None] < a1[None, :])).any(axis=1))
-        banks[name] = nov.extend_frame_bank(base, vids, owners, times, adms)
+        owners, times, embs = _stream_frames(recs, name)
+        adms = [((t[:, None] >= spans[o][0][None, :]) & (t[:, None] < spans[o][1][None, :])).any(axis=1)
+                for o, t in zip(owners, times)]
+        banks[name] = nov.extend_frame_bank(base, embs, owners, times, adms)
     return Space(key=space.key, channels=space.channels, center=space.center, scale=space.scale, pca=space.pca,
                  blocks=space.blocks, ridges=space.ridges, novelty=banks)
 
@@ -501,10 +502,8 @@ def score_fleet(recs: list[RecordingFeatures], *, windowing, descriptor, scoring
         for name, bank in space.novelty.items():
             bank = bank.references(verdicts_for(bank.owner, bank.t, reviews, 0.5 * windowing.window_s))
             if with_tonight and use_history:
-                vids = [(r.identity, t, emb) for r in recs if r.recording_id in base_ids
-                        for (n, t, emb) in r.videos if n == name]
-                bank = nov.extend_frame_bank(bank, [e for _, _, e in vids], [o for o, _, _ in vids],
-                                             [t for _, t, _ in vids])
+                owners, times, embs = _stream_frames(recs, name, base_ids)
+                bank = nov.extend_frame_bank(bank, embs, owners, times)
             frame_banks[name] = bank
             vals = _aligned(window_novelties(recs, w.per_rec, bank, name, int(scoring_cfg.k)), w.per_rec)
             out[f"{name}.novelty"] = nov.zscore(vals, bank)

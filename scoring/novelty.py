@@ -19,6 +19,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from fleetsift.scoring import baseline
+
 FRAME_DIM = 64  # principal directions of the unit embeddings kept per reference frame
 MAX_FRAMES = 20000  # frames kept per video stream: a first night evenly subsampled, later nights the newest
 _CHUNK = 1024  # query frames per distance block (bounds memory at _CHUNK x n_reference_frames floats)
@@ -129,14 +131,13 @@ def window_novelty(t_frames: np.ndarray, novelty: np.ndarray, t_start: np.ndarra
 
 
 def robust_scale(values: np.ndarray) -> tuple[float, float]:
-    """Median and 1.4826 x MAD (the normal-consistent robust sigma, as for the blocks' z) of finite values."""
+    """Median and robust sigma of the finite values, as for the descriptor blocks' z (baseline.robust_scale);
+    (0, 1) when there are none (no baseline recording with another to compare its frames with)."""
     v = np.asarray(values, np.float64)
-    v = v[np.isfinite(v)]
-    if not len(v):
+    if not np.isfinite(v).any():
         return 0.0, 1.0
-    med = float(np.median(v))
-    s = 1.4826 * float(np.median(np.abs(v - med)))
-    return med, s if s > 1e-12 else max(float(v.std()), 1e-12)
+    med, s = baseline.robust_scale(v)
+    return med, max(s, 1e-12)
 
 
 def zscore(values: np.ndarray, bank: FrameBank) -> np.ndarray:
